@@ -1,0 +1,7 @@
+"""``python -m errbudget`` is the same as the ``errbudget`` command."""
+
+import sys
+
+from errbudget.cli import main
+
+sys.exit(main())

@@ -1,0 +1,643 @@
+"""Load and validate a case file (TOML) into typed, unit-checked dataclasses.
+
+Units are converted once, here: inside the package every parameter is a plain float in its
+internal unit (built-in laws: the case's population unit P and time unit T; custom laws:
+the unit the value was written in), and every time is in T, the unit of the case's step.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from errbudget import models
+from errbudget.distributions import KINDS, Distribution
+from errbudget.errors import InputError, did_you_mean
+from errbudget.schemes import get_scheme
+from errbudget.units import ensure_count_units, format_unit, parse_quantity, parse_unit, ureg
+
+TOP_KEYS = ("title", "model", "parameters", "simulation", "quantity", "budget", "counts")
+MODEL_KEYS = ("form", "unit", "rate")
+SIMULATION_KEYS = ("scheme", "step", "horizon")
+QUANTITY_KEYS = ("name", "kind", "at", "level")
+QUANTITY_KINDS = ("value", "time-to", "peak", "minimum")
+BUDGET_KEYS = ("fraction", "samples", "seed", "percentile", "level", "memory_limit")
+COUNTS_KEYS = ("file", "time", "time_unit", "count", "error", "fit", "start")
+ERROR_MODELS = ("poisson", "negative-binomial", "lognormal", "normal")
+TABLE_KEYS = ("value", "sd", "cv", "low", "high", "mode", "dist")
+MAX_CASE_BYTES = 1_000_000  # a case file is a few kilobytes; refuse anything absurd
+DEFAULT_MEMORY_LIMIT_MB = 4096  # resource ceiling for one run, overridable per case
+
+# Parameters that must be strictly positive, by name, for the built-in laws.
+POSITIVE = {"K": "a carrying capacity", "N0": "an initial population", "A": "an Allee threshold",
+            "theta": "a shape exponent"}
+NON_NEGATIVE = {"E": "a harvest rate", "H": "a removal rate"}
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """One model input: fixed (``dist`` None) or uncertain.
+
+    ``nominal`` and the distribution are in ``unit`` (see module docstring); ``to_coherent``
+    is the factor to the registry's root units, used only by custom laws.
+    """
+
+    name: str
+    nominal: float
+    unit: str
+    given: str
+    dist: Distribution | None
+    to_coherent: float = 1.0
+
+
+@dataclass(frozen=True)
+class QuantitySpec:
+    """A forecast quantity of interest; ``at`` [T] for values, ``level`` [P] for time-to."""
+
+    name: str
+    kind: str
+    at: float | None = None
+    level: float | None = None
+
+    @property
+    def unit_kind(self) -> str:
+        return "time" if self.kind == "time-to" else "population"
+
+
+@dataclass(frozen=True)
+class BudgetSpec:
+    fraction: float = 0.1
+    samples: int = 1024
+    seed: int = 1
+    percentile: float = 95.0
+    level: float = 0.9
+    memory_limit_mb: float = DEFAULT_MEMORY_LIMIT_MB
+
+
+@dataclass(frozen=True)
+class CountsSpec:
+    path: Path
+    time_column: str
+    time_factor: float  # one unit of the file's time_unit in T
+    days_to_internal: float  # one day in T, for date columns
+    count_column: str
+    error: str
+    fit: tuple[str, ...]
+    start: str | None
+
+
+@dataclass(frozen=True)
+class Case:
+    """A validated case, every number in internal units."""
+
+    title: str
+    path: Path
+    text: str
+    sha256: str
+    model: models.GrowthModel
+    rate_text: str | None
+    population_unit: str
+    time_unit: str
+    scheme: str
+    step: float
+    horizon: float
+    parameters: dict[str, Parameter]
+    quantities: tuple[QuantitySpec, ...]
+    budget: BudgetSpec
+    counts: CountsSpec | None
+
+    def quantity_unit(self, spec: QuantitySpec) -> str:
+        return self.time_unit if spec.kind == "time-to" else self.population_unit
+
+    def nominal(self) -> dict[str, float]:
+        return {name: p.nominal for name, p in self.parameters.items()}
+
+    def uncertain(self) -> dict[str, Distribution]:
+        return {name: p.dist for name, p in self.parameters.items() if p.dist is not None}
+
+
+class _Reader:
+    """Reads one case file; every error names the file and the key."""
+
+    def __init__(self, path: Path):
+        self.path = path
+        self.source = str(path)
+
+    def fail(self, message: str, where: str | None = None) -> InputError:
+        return InputError(message, self.source, where)
+
+    def table(self, data: object, where: str, allowed: tuple[str, ...]) -> dict:
+        if not isinstance(data, dict):
+            raise self.fail(f"expected a table, got {type(data).__name__}", where)
+        for key in data:
+            if key not in allowed:
+                raise self.fail(
+                    f"unknown key {key!r}{did_you_mean(key, allowed)}; accepted: "
+                    + ", ".join(allowed),
+                    f"{where}.{key}" if where else key,
+                )
+        return data
+
+    def required(self, data: dict, key: str, where: str):
+        if key not in data:
+            raise self.fail(f"missing required key {key!r}", f"{where}.{key}" if where else key)
+        return data[key]
+
+    def text(self, data: dict, key: str, where: str, default: str | None = None) -> str:
+        value = data.get(key, default) if default is not None else self.required(data, key, where)
+        if not isinstance(value, str) or not value.strip():
+            raise self.fail(f"expected a non-empty string, got {value!r}", f"{where}.{key}")
+        return value
+
+    def quantity(self, value: object, where: str, unit, meaning: str) -> float:
+        try:
+            parsed = parse_quantity(value, where)
+            return float(parsed.to(unit).magnitude)
+        except InputError as error:
+            raise error.located(self.source, where) from None
+        except Exception:  # pint's DimensionalityError and relatives
+            raise self.fail(
+                f"{value!r} has the wrong dimension for {meaning}: expected something "
+                f'convertible to "{format_unit(unit)}"',
+                where,
+            ) from None
+
+    def number(self, data: dict, key: str, where: str, default, low=None, high=None,
+               integer=False, low_open=True, accepted=""):
+        value = data.get(key, default)
+        full = f"{where}.{key}"
+        if isinstance(value, bool) or not isinstance(value, int | float) or (
+            integer and not isinstance(value, int)
+        ):
+            kind = "an integer" if integer else "a number"
+            raise self.fail(f"expected {kind}, got {value!r}{accepted}", full)
+        if not math.isfinite(value):
+            raise self.fail(f"expected a finite number, got {value!r}", full)
+        too_low = low is not None and (value <= low if low_open else value < low)
+        if too_low or (high is not None and value > high):
+            raise self.fail(f"{value!r} is out of range{accepted}", full)
+        return value
+
+
+def load_case(path: str | Path) -> Case:
+    """Read, validate and convert a case file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The TOML case file.
+
+    Returns
+    -------
+    Case
+
+    Raises
+    ------
+    InputError
+        Naming the file, the key (or TOML line) and what would be accepted.
+    """
+    path = Path(path)
+    reader = _Reader(path)
+    try:
+        raw_bytes = path.read_bytes()
+    except FileNotFoundError:
+        raise reader.fail("case file not found") from None
+    except OSError as error:
+        raise reader.fail(f"cannot read the case file ({error.strerror})") from None
+    if len(raw_bytes) > MAX_CASE_BYTES:
+        raise reader.fail(f"case file is larger than {MAX_CASE_BYTES} bytes")
+    try:
+        text = raw_bytes.decode("utf-8")
+    except UnicodeDecodeError:
+        raise reader.fail("case file is not UTF-8 text") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as error:
+        raise reader.fail(f"invalid TOML: {error}") from None
+    except RecursionError:
+        raise reader.fail("invalid TOML: nested too deeply") from None
+
+    reader.table(data, "", TOP_KEYS)
+    title = reader.text(data, "title", "", default="untitled case")
+
+    model_table = reader.table(reader.required(data, "model", ""), "model", MODEL_KEYS)
+    form = reader.text(model_table, "form", "model")
+    unit_text = reader.text(model_table, "unit", "model")
+    try:
+        ensure_count_units(unit_text)
+        population = parse_unit(unit_text, "model.unit")
+    except InputError as error:
+        raise error.located(reader.source, "model.unit") from None
+
+    sim = reader.table(reader.required(data, "simulation", ""), "simulation", SIMULATION_KEYS)
+    scheme_name = reader.text(sim, "scheme", "simulation")
+    try:
+        get_scheme(scheme_name)
+    except InputError as error:
+        raise error.located(reader.source) from None
+    step_q = _time_quantity(reader, reader.required(sim, "step", "simulation"), "simulation.step")
+    time_unit = step_q.units
+    step = float(step_q.magnitude)
+    horizon = reader.quantity(reader.required(sim, "horizon", "simulation"), "simulation.horizon",
+                              time_unit, "a time span")
+    if step <= 0:
+        raise reader.fail(f"the step must be positive, got {step_q:P}", "simulation.step")
+    if horizon <= 0:
+        raise reader.fail("the horizon must be positive", "simulation.horizon")
+    if step > horizon:
+        raise reader.fail(
+            f"the step ({step:g} {format_unit(time_unit)}) is longer than the horizon "
+            f"({horizon:g} {format_unit(time_unit)})",
+            "simulation.step",
+        )
+
+    params_table = reader.required(data, "parameters", "")
+    if not isinstance(params_table, dict):
+        raise reader.fail("expected a table of parameters", "parameters")
+
+    rate_text = model_table.get("rate")
+    if form == "custom":
+        model, parameters = _custom_model(reader, rate_text, params_table, population, time_unit)
+    else:
+        if rate_text is not None:
+            raise reader.fail('"rate" is only used with form = "custom"', "model.rate")
+        try:
+            model = models.built_in(form)
+        except InputError as error:
+            raise error.located(reader.source) from None
+        parameters = _builtin_parameters(reader, model, params_table, population, time_unit)
+
+    quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon)
+    budget = _budget(reader, data.get("budget", {}))
+    counts = _counts(reader, data.get("counts"), time_unit, parameters)
+
+    return Case(
+        title=title,
+        path=path,
+        text=text,
+        sha256=hashlib.sha256(raw_bytes).hexdigest(),
+        model=model,
+        rate_text=rate_text,
+        population_unit=format_unit(population),
+        time_unit=format_unit(time_unit),
+        scheme=scheme_name,
+        step=step,
+        horizon=horizon,
+        parameters=parameters,
+        quantities=quantities,
+        budget=budget,
+        counts=counts,
+    )
+
+
+def _time_quantity(reader: _Reader, value: object, where: str):
+    try:
+        q = parse_quantity(value, where)
+    except InputError as error:
+        raise error.located(reader.source, where) from None
+    if q.dimensionality != ureg.day.dimensionality:
+        raise reader.fail(f'{value!r} is not a time: give it with a unit such as "7 day"', where)
+    return q
+
+
+def _builtin_parameters(reader, model, table, population, time_unit) -> dict[str, Parameter]:
+    expected = ("N0", *model.parameter_names)
+    for name in table:
+        if name not in expected:
+            raise reader.fail(
+                f"{model.form!r} has no parameter {name!r}{did_you_mean(name, expected)}; "
+                "its parameters are " + ", ".join(expected),
+                f"parameters.{name}",
+            )
+    units = {
+        models.RATE: ureg.dimensionless / time_unit,
+        models.POPULATION: population,
+        models.FLUX: population / time_unit,
+        models.PURE: ureg.dimensionless,
+    }
+    meanings = {models.RATE: "a rate (per time)", models.POPULATION: "a population level",
+                models.FLUX: "a flux (population per time)", models.PURE: "a pure number"}
+    parameters = {}
+    for name in expected:
+        where = f"parameters.{name}"
+        if name not in table:
+            raise reader.fail(f"missing parameter {name!r} of the {model.form!r} law", where)
+        kind = models.POPULATION if name == "N0" else model.kinds[name]
+        parameters[name] = _parameter(reader, name, table[name], units[kind], meanings[kind])
+        _check_sign(reader, parameters[name], where)
+    return parameters
+
+
+def _custom_model(reader, rate_text, table, population, time_unit):
+    from errbudget import expr  # custom laws only; keeps built-in runs light
+
+    if not isinstance(rate_text, str):
+        raise reader.fail('form = "custom" needs a rate expression, e.g. rate = "r*N*(1 - N/K)"',
+                          "model.rate")
+    try:
+        used = expr.names_in(rate_text)
+    except InputError as error:
+        raise error.located(reader.source, "model.rate") from None
+    allowed = tuple(name for name in table if name != "N0")
+    for name in sorted(used):
+        if name not in table:
+            raise reader.fail(
+                f"the rate uses {name!r}, which is not in [parameters]"
+                f"{did_you_mean(name, allowed)}",
+                "model.rate",
+            )
+    if "N0" not in table:
+        raise reader.fail("missing parameter 'N0' (the initial population)", "parameters.N0")
+    for name in allowed:
+        if name not in used:
+            raise reader.fail(f"parameter {name!r} is not used by the rate expression",
+                              f"parameters.{name}")
+    try:
+        expression = expr.parse_rate(rate_text, allowed)
+    except InputError as error:
+        raise error.located(reader.source, "model.rate") from None
+
+    parameters = {"N0": _parameter(reader, "N0", table["N0"], population, "a population level")}
+    _check_sign(reader, parameters["N0"], "parameters.N0")
+    for name in allowed:
+        given_unit = _given_unit(reader, name, table[name])
+        parameters[name] = _parameter(reader, name, table[name], given_unit, "this parameter")
+    units = {"N": population, "t": time_unit}
+    units.update({name: ureg.Unit(parameters[name].unit) if parameters[name].unit != "1"
+                  else ureg.dimensionless for name in allowed})
+    try:
+        result = expression.result_unit(units, "model.rate")
+    except InputError as error:
+        raise error.located(reader.source, "model.rate") from None
+    target = population / time_unit
+    if ureg.Quantity(1, result).dimensionality != ureg.Quantity(1, target).dimensionality:
+        raise reader.fail(
+            f'the rate comes out in "{format_unit(result)}"; it must be a population per time '
+            f'such as "{format_unit(target)}"',
+            "model.rate",
+        )
+    # Evaluate in the registry's coherent root units, where every dimensionless combination
+    # has its true magnitude, then convert the result to P/T.
+    factors = {name: parameters[name].to_coherent for name in allowed}
+    n_factor = float(ureg.Quantity(1, population).to_root_units().magnitude)
+    t_factor = float(ureg.Quantity(1, time_unit).to_root_units().magnitude)
+    root_of_result = ureg.Quantity(1, result).to_root_units().units
+    out_factor = float(ureg.Quantity(1, root_of_result).to(target).magnitude)
+
+    def coherent(p):
+        return {name: p[name] * factors[name] for name in allowed}
+
+    def rate(t, n, p):
+        return expression.evaluate(t * t_factor, n * n_factor, coherent(p)) * out_factor
+
+    def d_dn(t, n, p):
+        return expression.d_dN(t * t_factor, n * n_factor, coherent(p)) * (out_factor * n_factor)
+
+    model = models.GrowthModel("custom", f"dN/dt = {rate_text}", {n: "custom" for n in allowed},
+                               rate, d_dn)
+    return model, parameters
+
+
+def _given_unit(reader, name, entry):
+    where = f"parameters.{name}"
+    probe = entry
+    if isinstance(entry, dict):
+        for key in ("value", "low", "mode", "high", "sd"):
+            if key in entry:
+                probe = entry[key]
+                break
+    try:
+        return parse_quantity(probe, where).units
+    except InputError as error:
+        raise error.located(reader.source, where) from None
+
+
+def _parameter(reader, name, entry, unit, meaning) -> Parameter:
+    where = f"parameters.{name}"
+    label = format_unit(unit)
+    coherent = float(ureg.Quantity(1, unit).to_root_units().magnitude)
+    if not isinstance(entry, dict):
+        value = reader.quantity(entry, where, unit, meaning)
+        return Parameter(name, value, label, str(entry), None, coherent)
+    reader.table(entry, where, TABLE_KEYS)
+
+    def get(key):
+        return reader.quantity(entry[key], f"{where}.{key}", unit, meaning) if key in entry else None
+
+    value, sd, low, high, mode = (get(k) for k in ("value", "sd", "low", "high", "mode"))
+    cv = None
+    if "cv" in entry:
+        cv = reader.number(entry, "cv", where, None, low=0, accepted="; cv is a positive number")
+    kind = entry.get("dist")
+    if kind is not None and kind not in KINDS:
+        raise reader.fail(f"unknown distribution {kind!r}{did_you_mean(str(kind), KINDS)}; "
+                          "accepted: " + ", ".join(KINDS), f"{where}.dist")
+    if kind is None:
+        spread_given = sd is not None or cv is not None
+        if mode is not None:
+            kind = "triangular"
+        elif spread_given and (low is not None or high is not None):
+            kind = "truncated-normal"
+        elif spread_given:
+            kind = "normal"
+        elif low is not None and high is not None:
+            kind = "uniform"
+        else:
+            raise reader.fail(
+                "an uncertain parameter needs sd or cv (normal), low and high (uniform), "
+                "low, mode and high (triangular), or dist = \"lognormal\" with cv or sd",
+                where,
+            )
+    if cv is not None:
+        if value is None:
+            raise reader.fail("cv needs a value to be relative to", f"{where}.cv")
+        if sd is not None:
+            raise reader.fail("give sd or cv, not both", f"{where}.cv")
+        sd = cv * abs(value)
+    if sd is not None and sd <= 0:
+        raise reader.fail("sd must be positive", f"{where}.sd")
+
+    def need(*keys):
+        for key, val in zip(keys, (dict(value=value, sd=sd, low=low, high=high, mode=mode)[k]
+                                   for k in keys), strict=True):
+            if val is None:
+                missing = "sd or cv" if key == "sd" else key
+                raise reader.fail(f"a {kind} distribution needs {missing}", f"{where}.{key}")
+
+    if kind in ("normal", "lognormal"):
+        need("value", "sd")
+        if kind == "lognormal" and value <= 0:
+            raise reader.fail("a lognormal parameter needs a positive value", f"{where}.value")
+        dist = Distribution(kind, value, sd=sd)
+    elif kind == "uniform":
+        need("low", "high")
+        dist = Distribution(kind, (low + high) / 2 if value is None else value, low=low, high=high)
+    elif kind == "triangular":
+        need("low", "mode", "high")
+        dist = Distribution(kind, mode if value is None else value, low=low, high=high, mode=mode)
+    else:
+        need("value", "sd")
+        dist = Distribution(kind, value, sd=sd, low=-math.inf if low is None else low,
+                            high=math.inf if high is None else high)
+    if dist.low >= dist.high:
+        raise reader.fail("low must be below high", f"{where}.low")
+    if kind == "triangular" and not dist.low <= dist.mode <= dist.high:
+        raise reader.fail("mode must lie between low and high", f"{where}.mode")
+    if not dist.low <= dist.nominal <= dist.high:
+        raise reader.fail("value must lie between low and high", f"{where}.value")
+    given = ", ".join(f"{k} = {v}" for k, v in entry.items())
+    return Parameter(name, float(dist.nominal), label, given, dist, coherent)
+
+
+def _check_sign(reader, parameter: Parameter, where: str) -> None:
+    name = parameter.name
+    lowest = parameter.nominal if parameter.dist is None else min(
+        parameter.nominal, parameter.dist.low if math.isfinite(parameter.dist.low)
+        else parameter.nominal)
+    if name in POSITIVE and lowest <= 0:
+        raise reader.fail(f"{POSITIVE[name]} must be positive, got {parameter.given}", where)
+    if name in NON_NEGATIVE and lowest < 0:
+        raise reader.fail(f"{NON_NEGATIVE[name]} cannot be negative, got {parameter.given}",
+                          where)
+
+
+def _quantities(reader, entries, population, time_unit, horizon) -> tuple[QuantitySpec, ...]:
+    if entries is None:
+        raise reader.fail("at least one [[quantity]] is needed (what the forecast is for)",
+                          "quantity")
+    if not isinstance(entries, list) or not entries:
+        raise reader.fail("write quantities as [[quantity]] tables", "quantity")
+    specs, names = [], set()
+    for index, entry in enumerate(entries, start=1):
+        where = f"quantity[{index}]"
+        reader.table(entry, where, QUANTITY_KEYS)
+        name = reader.text(entry, "name", where)
+        if name in names:
+            raise reader.fail(f"duplicate quantity name {name!r}", f"{where}.name")
+        names.add(name)
+        kind = reader.text(entry, "kind", where)
+        if kind not in QUANTITY_KINDS:
+            raise reader.fail(f"unknown kind {kind!r}{did_you_mean(kind, QUANTITY_KINDS)}; "
+                              "accepted: " + ", ".join(QUANTITY_KINDS), f"{where}.kind")
+        at = level = None
+        if kind == "value":
+            at = reader.quantity(reader.required(entry, "at", where), f"{where}.at", time_unit,
+                                 "a time")
+            if not 0 < at <= horizon * (1 + 1e-12):
+                raise reader.fail(
+                    f"at = {at:g} {format_unit(time_unit)} is outside the horizon "
+                    f"(0, {horizon:g}] {format_unit(time_unit)}", f"{where}.at")
+            at = min(at, horizon)
+        elif "at" in entry:
+            raise reader.fail(f'"at" is only used with kind = "value"', f"{where}.at")
+        if kind == "time-to":
+            level = reader.quantity(reader.required(entry, "level", where), f"{where}.level",
+                                    population, "a population level")
+            if level <= 0:
+                raise reader.fail("the level must be positive", f"{where}.level")
+        elif "level" in entry:
+            raise reader.fail('"level" is only used with kind = "time-to"', f"{where}.level")
+        specs.append(QuantitySpec(name, kind, at, level))
+    return tuple(specs)
+
+
+def _budget(reader, table) -> BudgetSpec:
+    table = reader.table(table, "budget", BUDGET_KEYS)
+    defaults = BudgetSpec()
+    return BudgetSpec(
+        fraction=float(reader.number(table, "fraction", "budget", defaults.fraction, low=0,
+                                     high=1, accepted="; accepted: 0 < fraction <= 1")),
+        samples=reader.number(table, "samples", "budget", defaults.samples, low=0, integer=True,
+                              accepted="; accepted: a power of two such as 512 or 1024"),
+        seed=reader.number(table, "seed", "budget", defaults.seed, low=0, integer=True,
+                           low_open=False, accepted="; accepted: an integer >= 0"),
+        percentile=float(reader.number(table, "percentile", "budget", defaults.percentile,
+                                       low=0, high=100, accepted="; accepted: 0 < p <= 100")),
+        level=float(reader.number(table, "level", "budget", defaults.level, low=0, high=0.999,
+                                  accepted="; accepted: 0 < level < 1")),
+        memory_limit_mb=float(reader.number(table, "memory_limit", "budget",
+                                            defaults.memory_limit_mb, low=0,
+                                            accepted="; accepted: megabytes, e.g. 2048")),
+    )
+
+
+def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
+    if table is None:
+        return None
+    table = reader.table(table, "counts", COUNTS_KEYS)
+    file_text = reader.text(table, "file", "counts")
+    given = Path(file_text)
+    base = reader.path.resolve().parent
+    resolved = given if given.is_absolute() else (base / given).resolve()
+    if not given.is_absolute() and not resolved.is_relative_to(base):
+        raise reader.fail("a relative counts path must stay inside the case's folder; "
+                          "give an absolute path to use a file elsewhere", "counts.file")
+    file_unit = _time_quantity(reader, "1 " + reader.text(table, "time_unit", "counts",
+                                                          default="day"), "counts.time_unit")
+    error = reader.text(table, "error", "counts", default="poisson")
+    if error not in ERROR_MODELS:
+        raise reader.fail(f"unknown observation model {error!r}{did_you_mean(error, ERROR_MODELS)}"
+                          "; accepted: " + ", ".join(ERROR_MODELS), "counts.error")
+    fit = reader.required(table, "fit", "counts")
+    if not isinstance(fit, list) or not fit or not all(isinstance(n, str) for n in fit):
+        raise reader.fail('expected a list of parameter names such as ["r", "K"]', "counts.fit")
+    for name in fit:
+        if name not in parameters:
+            raise reader.fail(f"cannot fit {name!r}: not a parameter"
+                              f"{did_you_mean(name, parameters)}", "counts.fit")
+    if len(set(fit)) != len(fit):
+        raise reader.fail("a parameter is listed twice", "counts.fit")
+    start = table.get("start")
+    if start is not None:
+        start = reader.text(table, "start", "counts")
+        try:
+            np.datetime64(start)
+        except ValueError:
+            raise reader.fail(f"{start!r} is not an ISO date such as 2026-04-01",
+                              "counts.start") from None
+    return CountsSpec(
+        path=resolved,
+        time_column=reader.text(table, "time", "counts", default="time"),
+        time_factor=float(file_unit.to(time_unit).magnitude),
+        days_to_internal=float(ureg.Quantity(1, "day").to(time_unit).magnitude),
+        count_column=reader.text(table, "count", "counts", default="count"),
+        error=error,
+        fit=tuple(fit),
+        start=start,
+    )
+
+
+def describe(case: Case) -> str:
+    """What ``errbudget check`` prints: the case as resolved, with units."""
+    lines = [
+        f"case: {case.title}",
+        f"  file: {case.path}",
+        f"  law: {case.model.form}: {case.model.equation}",
+        f"  population unit: {case.population_unit}; time unit: {case.time_unit}",
+        f"  scheme: {get_scheme(case.scheme).label} (order {get_scheme(case.scheme).order}), "
+        f"step {case.step:g} {case.time_unit}, horizon {case.horizon:g} {case.time_unit}",
+        "  parameters:",
+    ]
+    for p in case.parameters.values():
+        spread = "fixed" if p.dist is None else p.dist.describe(p.unit)
+        lines.append(f"    {p.name} = {p.nominal:g} {p.unit} ({spread})")
+    lines.append("  quantities:")
+    for q in case.quantities:
+        detail = ""
+        if q.kind == "value":
+            detail = f"at {q.at:g} {case.time_unit}"
+        elif q.kind == "time-to":
+            detail = f"level {q.level:g} {case.population_unit}"
+        lines.append(f"    {q.name}: {q.kind} {detail} [{case.quantity_unit(q)}]".rstrip())
+    b = case.budget
+    lines.append(f"  budget: fraction {b.fraction:g}, samples {b.samples}, seed {b.seed}, "
+                 f"percentile {b.percentile:g}, level {b.level:g}")
+    if case.counts:
+        c = case.counts
+        lines.append(f"  counts: {c.path.name} ({c.error}), fitting {', '.join(c.fit)}")
+    return "\n".join(lines)

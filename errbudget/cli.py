@@ -1,0 +1,134 @@
+"""The command line: ``errbudget run`` and ``errbudget check``. Thin: the work is elsewhere."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import traceback
+from datetime import UTC, datetime
+from pathlib import Path
+
+from errbudget.errors import InputError
+
+EXIT_OK, EXIT_INTERNAL, EXIT_INPUT = 0, 1, 2
+DEFAULT_OUT = "reports"
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str):  # bad options are bad input: exit code 2, one line
+        raise InputError(message, "command line")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="errbudget", description=(
+        "Is the time step of a population forecast small enough, given the data? "
+        "Splits forecast uncertainty into discretisation, parameter and round-off parts."))
+    parser.add_argument("--version", action="store_true", help="print the version and stop")
+    commands = parser.add_subparsers(dest="command", parser_class=_Parser)
+    run = commands.add_parser("run", help="compute the error budget of each case")
+    run.add_argument("cases", nargs="+", metavar="CASE", type=Path)
+    run.add_argument("--out", type=Path, default=Path(DEFAULT_OUT),
+                     help="folder for the outputs (default: reports/)")
+    run.add_argument("--samples", type=_positive_int, help="base sample size of the Sobol design")
+    run.add_argument("--seed", type=_non_negative_int, help="seed of the sampling design")
+    run.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    check = commands.add_parser("check", help="validate cases and print what they resolve to")
+    check.add_argument("cases", nargs="+", metavar="CASE", type=Path)
+    return parser
+
+
+def _positive_int(text: str) -> int:
+    value = _non_negative_int(text)
+    if value == 0:
+        raise argparse.ArgumentTypeError(f"expected a positive integer, got {text!r}")
+    return value
+
+
+def _non_negative_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected an integer, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected an integer >= 0, got {text!r}")
+    return value
+
+
+def main(argv: list[str] | None = None) -> int:
+    try:
+        args = build_parser().parse_args(argv)
+        if args.version:
+            from errbudget import __version__
+
+            print(f"errbudget {__version__}")
+            return EXIT_OK
+        if args.command is None:
+            raise InputError("choose a command: run or check (see errbudget --help)",
+                             "command line")
+        from errbudget.case import load_case
+
+        cases = [load_case(path) for path in args.cases]  # all valid before anything runs
+        if args.command == "check":
+            from errbudget.case import describe
+
+            for case in cases:
+                print(describe(case))
+            return EXIT_OK
+        for case in cases:
+            _run_one(case, args)
+        return EXIT_OK
+    except InputError as error:
+        print(f"errbudget: error: {error.format()}", file=sys.stderr)
+        return EXIT_INPUT
+    except KeyboardInterrupt:
+        print("errbudget: interrupted; earlier outputs are untouched", file=sys.stderr)
+        return EXIT_INTERNAL
+    except Exception as error:  # report, never a bare traceback for the user
+        print(f"errbudget: internal error: {type(error).__name__}: {error}", file=sys.stderr)
+        if "--debug-traceback" in (argv or sys.argv):
+            traceback.print_exc()
+        return EXIT_INTERNAL
+
+
+def _progress(quiet: bool, title: str):
+    if quiet or not sys.stderr.isatty():
+        return None, None
+    from tqdm import tqdm
+
+    bar = tqdm(total=8, desc=title[:30], file=sys.stderr, leave=False,
+               bar_format="{desc}: {n_fmt}/{total_fmt} {postfix}")
+
+    def say(label: str) -> None:
+        bar.set_postfix_str(label)
+        bar.update(1)
+
+    return say, bar
+
+
+def _run_one(case, args) -> None:
+    from errbudget import history
+    from errbudget.outputs import dumps, write_atomic
+    from errbudget.report import render_html
+    from errbudget.run import run_case
+
+    say, bar = _progress(args.quiet, case.path.stem)
+    try:
+        budget = run_case(case, samples=args.samples, seed=args.seed, progress=say)
+    finally:
+        if bar is not None:
+            bar.close()
+    data = budget.to_dict()
+    timestamp = datetime.now(UTC).isoformat(timespec="seconds")
+    data["run"]["timestamp"] = timestamp
+    folder = args.out / case.path.stem
+    with history.locked(folder):
+        line = history.entry(data, timestamp)
+        data["since_last"] = history.compare(history.last_entry(folder), line)
+        html = render_html(data, budget.series, case.text)
+        write_atomic(folder / "budget.json", dumps(data))
+        write_atomic(folder / "budget.html", html)
+        history.append(folder, line)
+    verdict = data["verdict"]
+    print(f"{case.path}: {'ADEQUATE' if verdict['adequate'] else 'NOT ADEQUATE'}")
+    print(f"  {verdict['reason']}")
+    print(f"  wrote {folder / 'budget.json'} and {folder / 'budget.html'}")

@@ -1,0 +1,348 @@
+"""Read field counts (time, count) from a delimited text file into plain arrays.
+
+The file is a small table with a header line: one column holds the time of each count,
+either as elapsed time since the start of the simulation (in the case's ``time_unit``) or
+as ISO 8601 dates (``2024-05-01``, ``2024-05-01T08:30``); another holds the observed
+population value (a count, or a density such as plants per square metre). The reader
+checks every row and refuses anything a fit could silently misread, naming the file, the
+line (the header is line 1) and the column.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import math
+import re
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from errbudget.errors import InputError, did_you_mean
+
+MAX_FILE_BYTES = 20 * 1024 * 1024  # field counts are small tables; anything larger is a wrong file
+MIN_ROWS = 3  # fewest counts a growth-curve fit can use (two parameters plus the start value)
+SECONDS_PER_DAY = 86400.0
+# Cell texts read as "no value recorded" rather than as a malformed number.
+MISSING_TOKENS = frozenset({"", "na", "n/a", "null", "none", "-"})
+# ISO 8601 calendar date, optionally with a time and a UTC offset.
+_ISO_DATE = re.compile(
+    r"^\d{4}-\d{2}-\d{2}(?:[T ]\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?)?(?:Z|[+-]\d{2}:?\d{2})?$"
+)
+_DELIMITERS = (",", ";", "\t")
+
+
+@dataclass(frozen=True, eq=False)
+class Counts:
+    """Field counts ready for fitting.
+
+    Attributes
+    ----------
+    times : numpy.ndarray
+        Elapsed time of each count since the start, strictly increasing, shape (T,)
+        [the case's internal time unit].
+    counts : numpy.ndarray
+        Observed values, shape (T,) [population unit] (floats: densities are allowed).
+    path : str
+        The file the counts were read from.
+    sha256 : str
+        SHA-256 of the file bytes (hex), so a report can say exactly which data it used.
+    labels : tuple of str
+        The time column as written in the file, one per count (for reports).
+    """
+
+    times: np.ndarray
+    counts: np.ndarray
+    path: str
+    sha256: str
+    labels: tuple[str, ...]
+
+
+def read_counts(
+    path: Path | str,
+    *,
+    time_column: str,
+    count_column: str,
+    time_factor: float = 1.0,
+    days_to_internal: float | None = None,
+    start: str | None = None,
+    where: str = "counts",
+) -> Counts:
+    """Read and check a counts file.
+
+    Parameters
+    ----------
+    path : pathlib.Path or str
+        The file: comma-, semicolon- or tab-separated text (UTF-8) with a header line.
+    time_column, count_column : str
+        Header names of the time column and of the count column.
+    time_factor : float
+        Internal time units per time unit of the file's elapsed times (multiply), e.g. 7
+        when the file counts weeks and the case works in days [internal unit / file unit].
+    days_to_internal : float, optional
+        Internal time units in one day [internal unit / day]; required when the time
+        column holds ISO dates.
+    start : str, optional
+        ISO date of time zero when the time column holds dates; default: the first date in
+        the file. Not accepted when the column holds elapsed times.
+    where : str
+        What the file is called in messages and the case-file table it came from.
+
+    Returns
+    -------
+    Counts
+        Times converted to the internal unit, counts as floats, the file hash and labels.
+
+    Raises
+    ------
+    errbudget.errors.InputError
+        For every problem in the file, naming the file, the line and the column.
+    """
+    if not (math.isfinite(time_factor) and time_factor > 0):
+        raise ValueError(f"time_factor must be a positive finite number, got {time_factor!r}")
+    path = Path(path)
+    source = str(path)
+    raw = _read_bytes(path, where)
+    header, rows = _parse_table(raw, source, where)
+    if time_column == count_column:
+        raise InputError(
+            f'the time column and the count column are both "{time_column}"; '
+            "name two different columns",
+            source=source,
+            where="line 1",
+        )
+    time_index = _column_index(header, time_column, source)
+    count_index = _column_index(header, count_column, source)
+
+    lines: list[int] = []
+    time_cells: list[str] = []
+    values: list[float] = []
+    for line, row in rows:
+        if all(cell == "" for cell in row):
+            continue  # a blank line carries no count
+        count_where = f'line {line}, column "{count_column}"'
+        value = _number(row[count_index], source, count_where)
+        if value < 0:
+            raise InputError(
+                f"{row[count_index]} is negative; counts must be zero or more",
+                source=source,
+                where=count_where,
+            )
+        lines.append(line)
+        time_cells.append(row[time_index])
+        values.append(value)
+
+    times = _elapsed_times(
+        time_cells, lines, time_column, time_factor, days_to_internal, start, source, where
+    )
+    _check_order(times, time_cells, lines, source, time_column)
+    if len(values) < MIN_ROWS:
+        raise InputError(
+            f"has {len(values)} data row{'s' if len(values) != 1 else ''}; "
+            f"a fit needs at least {MIN_ROWS}",
+            source=source,
+        )
+    times_array = np.asarray(times, dtype=float)
+    counts_array = np.asarray(values, dtype=float)
+    times_array.flags.writeable = False
+    counts_array.flags.writeable = False
+    return Counts(
+        times=times_array,
+        counts=counts_array,
+        path=source,
+        sha256=hashlib.sha256(raw).hexdigest(),
+        labels=tuple(time_cells),
+    )
+
+
+def _read_bytes(path: Path, where: str) -> bytes:
+    """The whole file, after checking it exists, is a file and is not too large."""
+    source = str(path)
+    if not path.exists():
+        raise InputError(f"{where} file not found", source=source)
+    if not path.is_file():
+        raise InputError(f"{where} file is not a regular file", source=source)
+    size = path.stat().st_size
+    if size > MAX_FILE_BYTES:
+        raise InputError(
+            f"{where} file is {size / 1024**2:.1f} MB; files over "
+            f"{MAX_FILE_BYTES // 1024**2} MB are refused (is it the right file?)",
+            source=source,
+        )
+    try:
+        return path.read_bytes()
+    except OSError as error:
+        raise InputError(f"{where} file cannot be read ({error.strerror})", source=source) from None
+
+
+def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[tuple[int, list]]]:
+    """Header names and (line number, cells) of each data row, all cells stripped text."""
+    try:
+        text = raw.decode("utf-8-sig")  # spreadsheet exports often start with a byte-order mark
+    except UnicodeDecodeError as error:
+        raise InputError(
+            f"{where} file is not UTF-8 text (byte {error.start} cannot be decoded); "
+            "save it as UTF-8 CSV",
+            source=source,
+        ) from None
+    if not text.strip():
+        raise InputError(f"{where} file is empty; expected a header line and data rows",
+                         source=source)
+    first_line = text.splitlines()[0]
+    delimiter = max(_DELIMITERS, key=first_line.count)
+    try:
+        # Everything as text, blank lines kept, so that row i of the table is line i + 1.
+        table = pd.read_csv(
+            io.StringIO(text),
+            sep=delimiter,
+            header=None,
+            dtype=str,
+            keep_default_na=False,
+            na_filter=False,
+            skip_blank_lines=False,
+            engine="c",
+        )
+    except pd.errors.EmptyDataError:
+        raise InputError(f"{where} file holds no table", source=source) from None
+    except pd.errors.ParserError as error:
+        detail = str(error).split("C error: ")[-1].strip()
+        raise InputError(
+            f"{where} file is not a regular table ({detail}); every row needs the same "
+            "number of cells as the header",
+            source=source,
+        ) from None
+    cells = [
+        [cell.strip() if isinstance(cell, str) else "" for cell in row]
+        for row in table.itertuples(index=False, name=None)
+    ]
+    header = cells[0]
+    if all(name == "" for name in header):
+        raise InputError("line 1 is empty; the first line must hold the column names",
+                         source=source, where="line 1")
+    return header, [(number + 2, row) for number, row in enumerate(cells[1:])]
+
+
+def _column_index(header: list[str], name: str, source: str) -> int:
+    """Position of column ``name`` in the header, or an error listing the columns present."""
+    positions = [i for i, column in enumerate(header) if column == name]
+    if len(positions) > 1:
+        raise InputError(f'column "{name}" appears {len(positions)} times in the header',
+                         source=source, where="line 1")
+    if not positions:
+        present = ", ".join(f'"{column}"' for column in header if column)
+        raise InputError(
+            f'no column "{name}" in the header (columns present: {present})'
+            f"{did_you_mean(name, header)}",
+            source=source,
+            where="line 1",
+        )
+    return positions[0]
+
+
+def _number(cell: str, source: str, where: str, expected: str = "a number") -> float:
+    """A finite float from one cell, or an error saying what is wrong with the cell."""
+    if cell.lower() in MISSING_TOKENS:
+        raise InputError("value is missing; fill it in or delete the row",
+                         source=source, where=where)
+    try:
+        value = float(cell)
+    except ValueError:
+        raise InputError(f'"{cell}" is not {expected}', source=source, where=where) from None
+    if not math.isfinite(value):
+        raise InputError(f'"{cell}" is not a finite number', source=source, where=where)
+    return value
+
+
+def _parse_date(cell: str, source: str, where: str) -> datetime:
+    """An ISO 8601 date or date-time; aware values are converted to naive UTC."""
+    if cell.lower() in MISSING_TOKENS:
+        raise InputError("value is missing; fill it in or delete the row",
+                         source=source, where=where)
+    try:
+        if not _ISO_DATE.match(cell):
+            raise ValueError(cell)
+        moment = datetime.fromisoformat(cell)
+    except ValueError:
+        raise InputError(
+            f'"{cell}" cannot be parsed as a date; write dates as YYYY-MM-DD '
+            "(optionally with a time, YYYY-MM-DDTHH:MM)",
+            source=source,
+            where=where,
+        ) from None
+    if moment.tzinfo is not None:
+        moment = moment.astimezone(UTC).replace(tzinfo=None)
+    return moment
+
+
+def _elapsed_times(
+    cells: list[str],
+    lines: list[int],
+    column: str,
+    time_factor: float,
+    days_to_internal: float | None,
+    start: str | None,
+    source: str,
+    where: str,
+) -> list[float]:
+    """Elapsed times [internal unit] from elapsed-time cells or from ISO dates."""
+    places = [f'line {line}, column "{column}"' for line in lines]
+    dated = bool(cells) and _ISO_DATE.match(cells[0]) is not None
+    if not dated:
+        if start is not None:
+            raise InputError(
+                f'start is only used when the time column holds dates; column "{column}" '
+                "holds elapsed times, which already count from the start",
+                where=f"[{where}] start",
+            )
+        times = []
+        for cell, place in zip(cells, places, strict=True):
+            value = _number(cell, source, place, "a number (nor an ISO date, YYYY-MM-DD)")
+            if value < 0:
+                raise InputError(
+                    f"elapsed time {cell} is before the start (times must be zero or more)",
+                    source=source,
+                    where=place,
+                )
+            times.append(value * time_factor)
+        return times
+
+    if days_to_internal is None or not (math.isfinite(days_to_internal) and days_to_internal > 0):
+        raise ValueError("days_to_internal (a positive float) is needed when the times are dates")
+    moments = [_parse_date(cell, source, place) for cell, place in zip(cells, places, strict=True)]
+    if start is None:
+        origin = moments[0]
+    else:
+        origin = _parse_date(str(start), None, f"[{where}] start")
+    times = []
+    for cell, place, moment in zip(cells, places, moments, strict=True):
+        days = (moment - origin).total_seconds() / SECONDS_PER_DAY
+        if days < 0:
+            raise InputError(f"date {cell} is before the start {origin.isoformat()}",
+                             source=source, where=place)
+        times.append(days * days_to_internal)
+    return times
+
+
+def _check_order(
+    times: list[float], cells: list[str], lines: list[int], source: str, column: str
+) -> None:
+    """Refuse repeated times and rows out of time order, naming the first offending row."""
+    for i in range(1, len(times)):
+        place = f'line {lines[i]}, column "{column}"'
+        if times[i] == times[i - 1]:
+            raise InputError(
+                f"time {cells[i]} repeats the time on line {lines[i - 1]}; "
+                "combine the two counts or correct the time",
+                source=source,
+                where=place,
+            )
+        if times[i] < times[i - 1]:
+            raise InputError(
+                f"time {cells[i]} comes before {cells[i - 1]} on line {lines[i - 1]}; "
+                "sort the rows by time",
+                source=source,
+                where=place,
+            )

@@ -1,0 +1,62 @@
+"""Run the case's law over an ensemble of parameter sets at one step, and read quantities."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+
+import numpy as np
+
+from errbudget.case import Case
+from errbudget.quantities import Trajectory, evaluate
+from errbudget.schemes import Scheme, get_scheme, integrate
+
+
+def n_steps_for(horizon: float, step: float) -> int:
+    """Steps needed to reach the horizon (the last may pass it) [count]."""
+    return max(1, math.ceil(horizon / step - 1e-9))
+
+
+def solve(case: Case, params: Mapping[str, np.ndarray], step: float,
+          scheme: Scheme | None = None, dtype: type = np.float64) -> Trajectory:
+    """Integrate the case's law for every member of ``params`` (which includes N0).
+
+    Parameters
+    ----------
+    case : Case
+    params : mapping of str to ndarray of shape (S,)
+        Every parameter of the law, and N0 [internal units].
+    step : float
+        Time step [case time unit].
+    scheme : Scheme, optional
+        Defaults to the case's scheme.
+    dtype : numpy float type
+        Arithmetic of the run.
+    """
+    scheme = scheme or get_scheme(case.scheme)
+    law = {name: np.asarray(value, dtype=dtype) for name, value in params.items() if name != "N0"}
+    states = integrate(case.model.rate, params["N0"], law, step,
+                       n_steps_for(case.horizon, step), scheme, dtype=dtype)
+    return Trajectory(states, step, case.horizon, case.model.rate, law)
+
+
+def quantity_values(case: Case, traj: Trajectory) -> tuple[np.ndarray, list[bool]]:
+    """Values of every quantity of the case, shape (Q, S), and per quantity an off-grid flag."""
+    values, off_grid = [], []
+    for spec in case.quantities:
+        value, off = evaluate(spec, traj)
+        values.append(np.asarray(value, dtype=float))
+        off_grid.append(off)
+    return np.vstack(values), off_grid
+
+
+def nominal_params(case: Case) -> dict[str, np.ndarray]:
+    """The nominal parameter set as one-member arrays."""
+    return {name: np.array([value]) for name, value in case.nominal().items()}
+
+
+def ensemble_params(case: Case, sampled: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Sampled values for the uncertain inputs, nominal values broadcast for the fixed ones."""
+    size = len(next(iter(sampled.values()))) if sampled else 1
+    return {name: np.asarray(sampled[name], dtype=float) if name in sampled
+            else np.full(size, value) for name, value in case.nominal().items()}

@@ -1,0 +1,88 @@
+"""The refinement ladder: steps h, h/2, h/4, ... from the case's step, chosen on the nominal run.
+
+The ladder grows until the observed order of every quantity settles near the scheme's formal
+order over the last triplets, or until a cap; the ensemble then runs only on the levels the
+budget needs (the case's step and the finest levels).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from errbudget.case import Case
+from errbudget.convergence import grid_convergence
+from errbudget.ensemble import n_steps_for, nominal_params, quantity_values, solve
+from errbudget.schemes import get_scheme
+
+RATIO = 2  # constant refinement ratio of the ladder
+MIN_LEVELS = 5  # the case's step and four refinements
+MAX_LEVELS = 12  # h / 2048 at most
+MAX_STEPS = 2**19  # steps of the finest level at most, whatever the case
+ORDER_TOLERANCE = 0.15  # |p_observed - p_formal| / p_formal counted as settled (common practice)
+ROUNDOFF_FLOOR = 1e3 * np.finfo(float).eps  # level differences below this share are round-off
+
+
+def settled(values: np.ndarray, formal: int) -> bool:
+    """Whether the last two triplets of a ladder column give the formal order (or agree exactly).
+
+    ``values`` holds one quantity on the ladder, coarsest first.
+    """
+    if values.size < 4 or not np.isfinite(values).all():
+        return False
+    diffs = np.abs(np.diff(values))
+    scale = max(np.abs(values).max(), 1e-300)
+    if diffs[-1] <= ROUNDOFF_FLOOR * scale:
+        return True
+    orders = []
+    for first in (-3, -2):
+        a, b = diffs[first], diffs[first + 1]
+        if b <= 0 or a <= 0:
+            return False
+        orders.append(np.log(a / b) / np.log(RATIO))
+    return all(abs(p - formal) <= ORDER_TOLERANCE * formal for p in orders)
+
+
+def build(case: Case) -> dict:
+    """Choose the ladder on the nominal parameters.
+
+    Returns
+    -------
+    dict
+        ``steps`` (coarsest first) [time], ``values`` (levels, Q) at nominal parameters,
+        ``settled`` per quantity, ``capped`` (bool), ``off_grid`` per quantity,
+        ``convergence``: per quantity a GridConvergence of the three finest levels, and
+        ``case_level``: per quantity a GridConvergence of the case's step and the next two.
+    """
+    scheme = get_scheme(case.scheme)
+    params = nominal_params(case)
+    steps, rows, off_grid = [], [], None
+    capped = False
+    while True:
+        step = case.step / RATIO ** len(steps)
+        values, off = quantity_values(case, solve(case, params, step))
+        steps.append(step)
+        rows.append(values[:, 0])
+        off_grid = off if off_grid is None else off_grid
+        table = np.array(rows)
+        done = [settled(table[:, q], scheme.order) for q in range(table.shape[1])]
+        if len(steps) >= MIN_LEVELS and all(done):
+            break
+        next_steps = n_steps_for(case.horizon, case.step / RATIO ** len(steps))
+        if len(steps) >= MAX_LEVELS or next_steps > MAX_STEPS:
+            capped = True
+            break
+    table = np.array(rows)
+    convergence, case_level = [], []
+    for q in range(table.shape[1]):
+        column = table[:, q]
+        convergence.append(_safe_gci(column[-3:], steps[-3:], scheme.order))
+        case_level.append(_safe_gci(column[:3], steps[:3], scheme.order))
+    return {"steps": steps, "values": table, "settled": done, "capped": capped,
+            "off_grid": off_grid, "convergence": convergence, "case_level": case_level}
+
+
+def _safe_gci(values: np.ndarray, steps: list[float], formal: int):
+    """grid_convergence, or None where a level has no finite value (divergent runs)."""
+    if not np.isfinite(values).all():
+        return None
+    return grid_convergence(list(values), list(steps), formal_order=formal)

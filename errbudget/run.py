@@ -1,0 +1,230 @@
+"""One run of a case: (fit) -> ensemble -> ladder -> estimates -> budget.
+
+Data flow one way; nothing here reads or writes files except through ``fit_from_counts``
+(which reads the counts file named by the case). The CLI writes the outputs.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from errbudget import artefacts, ladder, roundoff, stability
+from errbudget.budget import assemble, recommend
+from errbudget.case import Case
+from errbudget.convergence import richardson
+from errbudget.ensemble import (
+    ensemble_params,
+    n_steps_for,
+    nominal_params,
+    quantity_values,
+    solve,
+)
+from errbudget.errors import InputError
+from errbudget.models import stable_equilibria
+from errbudget.schemes import get_scheme
+from errbudget.spread import sample_design, sobol_indices, spread_summary
+
+BYTES_PER_VALUE = 8
+WORK_COPIES = 6  # arrays alive at once per stored trajectory during a level (stages, temporaries)
+BAND_PERCENTILES = (5.0, 50.0, 95.0)
+
+
+@dataclass
+class Budget:
+    """The result of a run: ``to_dict()`` is budget.json; ``series`` feeds the report's plots."""
+
+    data: dict
+    series: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        return self.data
+
+    @property
+    def adequate(self) -> bool:
+        return bool(self.data["verdict"]["adequate"])
+
+
+def estimate_memory_mb(case: Case, rows: int, finest_step: float) -> float:
+    """Peak memory of the ensemble runs [MB]: trajectories of the case's and finest levels."""
+    stored = n_steps_for(case.horizon, case.step) + 2 * n_steps_for(case.horizon, finest_step)
+    return rows * stored * BYTES_PER_VALUE * WORK_COPIES / 1e6
+
+
+def run_case(case: Case, *, samples: int | None = None, seed: int | None = None,
+             progress: Callable[[str], None] | None = None, fit=None) -> Budget:
+    """Compute the error budget of a case.
+
+    Parameters
+    ----------
+    case : Case
+        From :func:`errbudget.load_case`.
+    samples : int, optional
+        Base sample size of the Sobol design (overrides ``[budget] samples``).
+    seed : int, optional
+        Seed of the design (overrides ``[budget] seed``).
+    progress : callable, optional
+        Called with a short label as each stage starts.
+    fit : object, optional
+        A result of :func:`errbudget.calibrate.fit_from_counts` already computed.
+
+    Returns
+    -------
+    Budget
+    """
+    say = progress or (lambda label: None)
+    started = time.perf_counter()
+    n_base = samples if samples is not None else case.budget.samples
+    seed = seed if seed is not None else case.budget.seed
+    scheme = get_scheme(case.scheme)
+    flags: list[dict] = []
+
+    independent = case.uncertain()
+    joint = None
+    if case.counts is not None:
+        say("fitting the counts")
+        from errbudget.calibrate import fit_from_counts, joint_from_fit
+
+        fit = fit if fit is not None else fit_from_counts(case)
+        joint = joint_from_fit(fit, flags)
+        if joint is not None:
+            independent = {k: v for k, v in independent.items() if k not in joint.names}
+
+    say("choosing the refinement ladder")
+    steps_info = ladder.build(case)
+    steps = steps_info["steps"]
+    if steps_info["capped"]:
+        flags.append({"code": "ladder-capped", "message": (
+            f"the observed order did not settle at the formal order {scheme.order} within "
+            f"{len(steps)} levels (finest step {steps[-1]:g} {case.time_unit}); the "
+            "discretisation estimates are less certain")})
+
+    if independent or joint is not None:
+        design = sample_design(independent, joint, n_base, seed)
+        sampled = design.values
+        rows = design.n_rows
+    else:
+        design, sampled, rows = None, {}, 1
+    limit = case.budget.memory_limit_mb
+    need = estimate_memory_mb(case, rows, steps[-1])
+    if need > limit:
+        raise InputError(
+            f"this run would need about {need:.0f} MB ({rows} parameter sets, finest step "
+            f"{steps[-1]:g} {case.time_unit}), above the limit of {limit:.0f} MB; lower "
+            "[budget] samples, shorten the horizon, or raise [budget] memory_limit",
+            str(case.path), "budget.samples")
+    params = ensemble_params(case, sampled)
+
+    say(f"ensemble at the case's step ({rows} parameter sets)")
+    coarse = solve(case, params, case.step)
+    case_values, _ = quantity_values(case, coarse)
+    say("ensemble on the finest ladder levels")
+    finer = solve(case, params, steps[-2])
+    finest = solve(case, params, steps[-1])
+    finer_values, _ = quantity_values(case, finer)
+    finest_values, _ = quantity_values(case, finest)
+    reference = richardson(finest_values, finer_values, ladder.RATIO, scheme.order)
+    errors = discretisation_errors(case, case_values, reference)
+
+    stride = ladder.RATIO ** (len(steps) - 1)
+    fine_on_case_grid = finest.states[::stride][: coarse.states.shape[0]]
+    law = {k: v for k, v in params.items() if k != "N0"}
+    levels = [eq.value for eq in stable_equilibria(case.model, law)]
+    masks = artefacts.detect(coarse.states, fine_on_case_grid, levels, coarse.last_index)
+    flags.extend(artefacts.flags(masks, f"at the case's step of {case.step:g} {case.time_unit}"))
+
+    say("parameter spread and Sobol indices")
+    iid = design.independent_rows if design is not None else np.array([0])
+    spreads, indices = [], []
+    for q in range(len(case.quantities)):
+        spreads.append(spread_summary(reference[q, iid], case.budget.level))
+        if design is not None:
+            indices.append(sobol_indices(design, reference[q], seed=seed))
+        else:
+            indices.append({})
+
+    drivers = _drivers(errors, sampled, design)
+    say("round-off")
+    rounding = roundoff.measure(case, case.step)
+    limits = stability.step_limits(case.model, scheme, law)
+
+    say("searching for the coarsest adequate step")
+    recommendation = recommend(case, params, reference, finest, stride_of=steps[-1],
+                               spreads=spreads, limits=limits)
+    series = _series(case, coarse, finest, stride, iid, errors)
+    elapsed = time.perf_counter() - started
+    data = assemble(case, scheme=scheme, steps_info=steps_info, case_values=case_values,
+                    reference=reference, errors=errors, spreads=spreads, indices=indices,
+                    drivers=drivers, rounding=rounding, limits=limits, flags=flags,
+                    recommendation=recommendation, fit=fit, design_rows=rows, n_base=n_base,
+                    seed=seed, elapsed=elapsed, series=series)
+    return Budget(data, series)
+
+
+def discretisation_errors(case: Case, values: np.ndarray, reference: np.ndarray) -> np.ndarray:
+    """|value - reference| per quantity and member, shape (Q, S).
+
+    A time-to level reached by one solution but not the other within the horizon gets the
+    lower bound |horizon - t|; where neither reaches it the error is 0 (nothing to compare).
+    Members whose run diverged keep an infinite error.
+    """
+    with np.errstate(invalid="ignore"):
+        errors = np.abs(values - reference)
+    for q, spec in enumerate(case.quantities):
+        if spec.kind != "time-to":
+            continue
+        v, ref = values[q], reference[q]
+        neither = np.isnan(v) & np.isnan(ref)
+        one = np.isnan(v) ^ np.isnan(ref)
+        found = np.where(np.isnan(v), ref, v)
+        errors[q] = np.where(neither, 0.0, np.where(one, np.abs(case.horizon - found), errors[q]))
+    errors[np.isnan(errors)] = np.inf
+    return errors
+
+
+def _drivers(errors: np.ndarray, sampled: dict, design) -> list[dict | None]:
+    """Per quantity: the input whose rank correlation with the discretisation error is largest."""
+    result = []
+    for q in range(errors.shape[0]):
+        best = None
+        finite = np.isfinite(errors[q])
+        if design is not None and finite.sum() > 10 and np.ptp(errors[q][finite]) > 0:
+            for name, values in sampled.items():
+                if np.ptp(values[finite]) == 0:
+                    continue
+                rho = float(stats.spearmanr(values[finite], errors[q][finite]).statistic)
+                if math.isfinite(rho) and (best is None or abs(rho) > abs(best["rho"])):
+                    best = {"name": name, "rho": rho}
+        result.append(best)
+    return result
+
+
+def _series(case: Case, coarse, finest, stride: int, iid: np.ndarray, errors) -> dict:
+    """Time series for the report: nominal-free ensemble bands and the error along the run."""
+    last = coarse.last_index
+    times = np.arange(last + 1) * case.step
+    fine = finest.states[::stride][: last + 1].astype(float)
+    coarse_states = coarse.states[: last + 1].astype(float)
+    with np.errstate(invalid="ignore"):
+        gap = np.abs(coarse_states - fine)
+        band = np.nanpercentile(fine[:, iid], BAND_PERCENTILES, axis=1)
+        gap_high = np.nanpercentile(gap[:, iid], 95.0, axis=1)
+    worst = int(np.nanargmax(gap_high)) if np.isfinite(gap_high).any() else 0
+    fine_times = np.arange(finest.last_index + 1) * finest.step
+    return {
+        "times": times,
+        "fine_times": fine_times,
+        "band": band,
+        "error_p95": gap_high,
+        "worst_time": float(times[worst]),
+        "worst_error": float(gap_high[worst]) if np.isfinite(gap_high[worst]) else None,
+        "nominal_coarse": solve(case, nominal_params(case), case.step).states[: last + 1, 0],
+        "nominal_fine": solve(case, nominal_params(case), finest.step).states[
+            : finest.last_index + 1, 0],
+        "errors": errors,
+    }

@@ -1,0 +1,100 @@
+"""The package's single pint registry and the unit helpers used at the boundaries.
+
+Every quantity read from a case file passes through :func:`parse_quantity` once; inside the
+numerical core only plain floats in the case's population unit and time unit circulate.
+"""
+
+from __future__ import annotations
+
+import re
+
+import pint
+
+from errbudget.errors import InputError
+
+ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
+Quantity = ureg.Quantity
+
+_NAME = re.compile(r"[A-Za-z_][A-Za-z_0-9]*")
+_SAFE_UNIT_TEXT = re.compile(r"^[A-Za-z_0-9\s\*/\^\.\(\)\-\+]*$")
+
+
+def ensure_count_units(unit_text: str) -> None:
+    """Define every name in ``unit_text`` that pint does not know as a count unit of its own.
+
+    A population measured in "crayfish" gets the new base dimension ``[crayfish]``; a name
+    pint knows (``tonne``, ``m``) keeps its meaning, so "mussel / m**2" is a density.
+    """
+    for name in _NAME.findall(unit_text):
+        try:
+            ureg.parse_units(name)
+        except pint.errors.UndefinedUnitError:
+            ureg.define(f"{name} = [{name}]")
+        except (pint.errors.PintError, ValueError, TypeError, AttributeError):
+            raise InputError(f'"{name}" cannot be used as a unit name') from None
+
+
+def parse_unit(text: str, where: str) -> pint.Unit:
+    """Parse a unit expression such as ``"mussel / m**2"``."""
+    if not isinstance(text, str) or not text.strip():
+        raise InputError("expected a unit name such as \"fish\" or \"plant / m**2\"", where=where)
+    if not _SAFE_UNIT_TEXT.match(text):
+        raise InputError(f'"{text}" is not a unit expression', where=where)
+    try:
+        return ureg.parse_units(text)
+    except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):
+        raise InputError(f'"{text}" is not a unit pint understands', where=where) from None
+
+
+def parse_quantity(text: object, where: str) -> pint.Quantity:
+    """Parse ``"0.06 / day"`` or ``"9000 crayfish"`` (a bare number is dimensionless)."""
+    if isinstance(text, bool):
+        raise InputError(f"expected a quantity such as \"7 day\", got {text!r}", where=where)
+    if isinstance(text, int | float):
+        return Quantity(float(text), ureg.dimensionless)
+    if not isinstance(text, str) or not text.strip():
+        raise InputError(f"expected a quantity such as \"7 day\", got {text!r}", where=where)
+    if not _SAFE_UNIT_TEXT.match(text) or len(text) > 200:
+        raise InputError(f'"{text}" is not a quantity such as "7 day"', where=where)
+    try:
+        value = ureg.Quantity(text)
+    except pint.errors.UndefinedUnitError as error:
+        unknown = error.unit_names if isinstance(error.unit_names, str) else error.unit_names[0]
+        raise InputError(f'"{text}" uses the unknown unit "{unknown}"', where=where) from None
+    except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError,
+            KeyError, IndexError, ZeroDivisionError, OverflowError):
+        raise InputError(f'"{text}" is not a quantity such as "7 day"', where=where) from None
+    if not isinstance(value, pint.Quantity):
+        value = Quantity(float(value), ureg.dimensionless)
+    try:
+        magnitude = float(value.magnitude)
+    except (TypeError, ValueError, OverflowError):
+        raise InputError(f'"{text}" does not have a single numeric value', where=where) from None
+    if magnitude != magnitude or magnitude in (float("inf"), float("-inf")):
+        raise InputError(f'"{text}" is not a finite number', where=where)
+    return value
+
+
+def to_float(quantity: pint.Quantity, unit: pint.Unit | str, where: str, meaning: str) -> float:
+    """Magnitude of ``quantity`` in ``unit``; a dimension mismatch is an :class:`InputError`.
+
+    ``meaning`` says what the value is ("a growth rate") for the message.
+    """
+    target = ureg.Unit(unit) if isinstance(unit, str) else unit
+    try:
+        return float(quantity.to(target).magnitude)
+    except pint.errors.DimensionalityError:
+        raise InputError(
+            f'"{quantity:~P}" has the wrong dimension for {meaning}: expected something '
+            f'convertible to "{format_unit(target)}"',
+            where=where,
+        ) from None
+
+
+def format_unit(unit: pint.Unit | str) -> str:
+    """A short, readable unit label (``1 / day``, ``mussel / m²``)."""
+    unit = ureg.Unit(unit) if isinstance(unit, str) else unit
+    if unit == ureg.dimensionless:
+        return "1"
+    text = f"{unit:P}"
+    return text or str(unit)
