@@ -33,8 +33,9 @@ def _crosses(states: np.ndarray, level: np.ndarray) -> np.ndarray:
     return above & below
 
 
-def detect(coarse: np.ndarray, fine: np.ndarray, stable_levels: list[np.ndarray],
-           horizon_index: int) -> dict[str, np.ndarray]:
+def detect(
+    coarse: np.ndarray, fine: np.ndarray, stable_levels: list[np.ndarray], horizon_index: int
+) -> dict[str, np.ndarray]:
     """Per-member artefact masks.
 
     Parameters
@@ -61,7 +62,8 @@ def detect(coarse: np.ndarray, fine: np.ndarray, stable_levels: list[np.ndarray]
         scale = np.where(fine_ok, np.abs(fine).max(axis=0), np.inf)
         finite = np.isfinite(coarse).all(axis=0)
         runaway = np.abs(np.where(np.isfinite(coarse), coarse, 0)).max(axis=0) > (
-            DIVERGENCE_FACTOR * scale)
+            DIVERGENCE_FACTOR * scale
+        )
         divergence = fine_ok & (~finite | runaway)
         safe = np.where(np.isfinite(coarse), coarse, 0.0)
         negative = fine_ok & ~divergence & (safe.min(axis=0) < 0) & (fine.min(axis=0) >= 0)
@@ -75,21 +77,26 @@ def detect(coarse: np.ndarray, fine: np.ndarray, stable_levels: list[np.ndarray]
         extra = _sign_changes(safe, scale) > _sign_changes(fine, scale)
         oscillation = fine_ok & ~divergence & extra
         tail = max(3, coarse.shape[0] // 4)
-        sustained = oscillation & (_sign_changes(safe[-tail:], scale) > _sign_changes(
-            fine[-tail:], scale) + 1)
-    return {"divergence": divergence, "negative": negative, "overshoot": overshoot,
-            "oscillation": oscillation, "sustained": sustained}
+        sustained = oscillation & (
+            _sign_changes(safe[-tail:], scale) > _sign_changes(fine[-tail:], scale) + 1
+        )
+    return {
+        "divergence": divergence,
+        "negative": negative,
+        "overshoot": overshoot,
+        "oscillation": oscillation,
+        "sustained": sustained,
+    }
 
 
 MESSAGES = {
     "divergence": "the solution blows up or becomes undefined (overflow or not a number) at "
-                  "the case's step while the accurate solution stays bounded",
-    "negative": "the population goes below zero at the case's step; the accurate solution "
-                "does not",
+    "the case's step while the accurate solution stays bounded",
+    "negative": "the population goes below zero at the case's step; the accurate solution does not",
     "overshoot": "the solution crosses a stable equilibrium that the accurate solution "
-                 "approaches from one side",
+    "approaches from one side",
     "oscillation": "the increments change sign more often than in the accurate solution "
-                   "(spurious oscillation)",
+    "(spurious oscillation)",
 }
 
 
@@ -103,6 +110,5 @@ def flags(masks: dict[str, np.ndarray], where: str) -> list[dict]:
             text = f"{message}: {count} of {members} parameter sets ({count / members:.1%}) {where}"
             if code == "oscillation" and masks["sustained"].any():
                 text += "; in some it does not die out (a period-2 cycle or worse)"
-            result.append({"code": code, "message": text, "share": count / members,
-                           "count": count})
+            result.append({"code": code, "message": text, "share": count / members, "count": count})
     return result

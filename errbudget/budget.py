@@ -10,6 +10,7 @@ spread (standard deviation), and no artefact flag is raised.
 from __future__ import annotations
 
 import math
+import time
 from fractions import Fraction
 
 import numpy as np
@@ -20,6 +21,7 @@ from errbudget.ensemble import n_steps_for, quantity_values, solve
 from errbudget.roundoff import UNIT_ROUNDOFF
 
 SCHEMA = "errbudget.budget/1"
+REFERENCE_NOTE = "Richardson-extrapolated values from the two finest ladder levels"
 ARTEFACT_CODES = ("negative", "overshoot", "oscillation", "divergence")
 # Multiples of the case's time unit a person would choose as a step, coarsest first.
 STEP_MULTIPLES = (28, 14, 10, 7, 5, 3.5, 2, 1) + tuple(2.0**-k for k in range(1, 11))
@@ -30,9 +32,12 @@ REFERENCE_MARGIN = 2  # candidates stay this many times coarser than the finest 
 def candidate_steps(case: Case, finest: float) -> list[float]:
     """Steps to try, coarsest first: round multiples of the time unit and the case's step."""
     steps = {float(m) for m in STEP_MULTIPLES} | {case.step}
-    keep = [s for s in steps
-            if REFERENCE_MARGIN * finest <= s * (1 + 1e-12)
-            and s * MIN_STEPS_IN_HORIZON <= case.horizon * (1 + 1e-12)]
+    keep = [
+        s
+        for s in steps
+        if REFERENCE_MARGIN * finest <= s * (1 + 1e-12)
+        and s * MIN_STEPS_IN_HORIZON <= case.horizon * (1 + 1e-12)
+    ]
     return sorted(keep, reverse=True)
 
 
@@ -48,6 +53,7 @@ def fine_at(finest, times: np.ndarray) -> np.ndarray:
 
 def judge_step(case: Case, params, reference, finest, step: float, spreads, levels) -> dict:
     """Run the ensemble at ``step`` and apply the verdict rule against the reference."""
+    started = time.perf_counter()
     from errbudget.run import discretisation_errors
 
     traj = solve(case, params, step)
@@ -69,12 +75,18 @@ def judge_step(case: Case, params, reference, finest, step: float, spreads, leve
     masks = artefacts.detect(traj.states, fine_at(finest, times), levels, traj.last_index)
     present = [code for code in ARTEFACT_CODES if masks[code].any()]
     worst = max(ratios)
-    return {"step": step, "ratios": ratios, "worst_ratio": worst, "artefacts": present,
-            "adequate": worst <= case.budget.fraction and not present}
+    return {
+        "step": step,
+        "ratios": ratios,
+        "worst_ratio": worst,
+        "artefacts": present,
+        "adequate": worst <= case.budget.fraction and not present,
+        "member_steps": n_steps * reference.shape[1],
+        "seconds": time.perf_counter() - started,
+    }
 
 
-def recommend(case: Case, params, reference, finest, *, stride_of: float, spreads,
-              limits) -> dict:
+def recommend(case: Case, params, reference, finest, *, stride_of: float, spreads, limits) -> dict:
     """The coarsest candidate step that meets the rule, checked again at half of it."""
     from errbudget.models import stable_equilibria
 
@@ -85,8 +97,15 @@ def recommend(case: Case, params, reference, finest, *, stride_of: float, spread
     tried = []
     for step in candidate_steps(case, stride_of):
         if step >= stable_limit:
-            tried.append({"step": step, "adequate": False, "worst_ratio": None,
-                          "artefacts": [], "note": "beyond the stability limit"})
+            tried.append(
+                {
+                    "step": step,
+                    "adequate": False,
+                    "worst_ratio": None,
+                    "artefacts": [],
+                    "note": "beyond the stability limit",
+                }
+            )
             continue
         result = judge_step(case, params, reference, finest, step, spreads, levels)
         tried.append(result)
@@ -95,9 +114,11 @@ def recommend(case: Case, params, reference, finest, *, stride_of: float, spread
             if half["adequate"]:
                 return {"step": step, "half_check": half, "tried": tried, "reason": None}
     finest_tried = tried[-1]["step"] if tried else None
-    reason = ("no candidate step down to "
-              f"{finest_tried:g} {case.time_unit} meets the rule" if tried else
-              "the horizon is too short for any candidate step")
+    reason = (
+        f"no candidate step down to {finest_tried:g} {case.time_unit} meets the rule"
+        if tried
+        else "the horizon is too short for any candidate step"
+    )
     return {"step": None, "half_check": None, "tried": tried, "reason": reason}
 
 
@@ -134,9 +155,28 @@ def _number(value) -> float | None:
     return value if math.isfinite(value) else None
 
 
-def assemble(case: Case, *, scheme, steps_info, case_values, reference, errors, spreads,
-             indices, drivers, rounding, limits, flags, recommendation, fit, design_rows,
-             n_base, seed, elapsed, series) -> dict:
+def assemble(
+    case: Case,
+    *,
+    scheme,
+    steps_info,
+    case_values,
+    reference,
+    errors,
+    spreads,
+    indices,
+    drivers,
+    rounding,
+    limits,
+    flags,
+    recommendation,
+    fit,
+    design_rows,
+    n_base,
+    seed,
+    elapsed,
+    series,
+) -> dict:
     """budget.json as a dict (the contract of DESIGN.md §3)."""
     ladder_steps = steps_info["steps"]
     quantities = []
@@ -151,68 +191,88 @@ def assemble(case: Case, *, scheme, steps_info, case_values, reference, errors, 
         pct = pct if all_finite else None
         nominal_value = float(column[0])
         reference_nominal = _richardson_nominal(column, scheme.order)
-        richardson_case = (abs(nominal_value - reference_nominal)
-                           if reference_nominal is not None and math.isfinite(nominal_value)
-                           else None)
+        richardson_case = (
+            abs(nominal_value - reference_nominal)
+            if reference_nominal is not None and math.isfinite(nominal_value)
+            else None
+        )
         round_error = _number(rounding["measured"][q])
         numerical = None if pct is None else pct + (round_error or 0.0)
         sd = spreads[q]["sd"]
         ratio = numerical / sd if numerical is not None and sd else None
         gci_case = _case_gci(case_gci, column)
-        quantities.append({
-            "name": spec.name,
-            "kind": spec.kind,
-            "unit": unit,
-            "value": _number(nominal_value),
-            "reference": reference_nominal,
-            "off_grid": bool(steps_info["off_grid"][q]),
-            "discretisation": {
-                "error": richardson_case,
-                "error_percentile": pct,
-                "percentile": case.budget.percentile,
-                "gci": gci_case,
-                "observed_order": finest_gci.observed_order if finest_gci else None,
-                "formal_order": scheme.order,
-                "behaviour": finest_gci.behaviour if finest_gci else "divergent",
-                "asymptotic": bool(steps_info["settled"][q]),
-                "driver": drivers[q],
-                "ladder": [{"step": s, "value": _number(v)} for s, v in
-                           zip(ladder_steps, column, strict=True)],
-                "finest_levels": finest_gci.to_dict() if finest_gci else None,
-            },
-            "roundoff": {
-                "error": round_error,
-                "bound": _number(rounding["bound"][q]),
-                "float32_difference": _number(abs(rounding["float32"][q] - rounding["float64"][q])),
-                "method": rounding["method"],
-            },
-            "parameter": {
-                "sd": sd,
-                "mean": spreads[q]["mean"],
-                "low": spreads[q]["low"],
-                "high": spreads[q]["high"],
-                "level": case.budget.level,
-                "indices": {k: v for k, v in indices[q].items() if not k.startswith("_")},
-                "indices_converged": indices[q].get("_convergence", {}).get("agree"),
-                "computed_on": "Richardson-extrapolated values from the two finest ladder levels",
-            },
-            "numerical_to_parameter": ratio,
-            "allowance": case.budget.fraction * sd if sd else None,
-            "combined": _rss(numerical, sd),
-            "shares": _shares(pct, round_error, sd),
-            "adequate": bool(ratio is not None and ratio <= case.budget.fraction),
-        })
+        quantities.append(
+            {
+                "name": spec.name,
+                "kind": spec.kind,
+                "unit": unit,
+                "value": _number(nominal_value),
+                "reference": reference_nominal,
+                "off_grid": bool(steps_info["off_grid"][q]),
+                "discretisation": {
+                    "error": richardson_case,
+                    "error_percentile": pct,
+                    "percentile": case.budget.percentile,
+                    "gci": gci_case,
+                    "observed_order": finest_gci.observed_order if finest_gci else None,
+                    "formal_order": scheme.order,
+                    "behaviour": finest_gci.behaviour if finest_gci else "divergent",
+                    "asymptotic": bool(steps_info["settled"][q]),
+                    "driver": drivers[q],
+                    "ladder": [
+                        {"step": s, "value": _number(v)}
+                        for s, v in zip(ladder_steps, column, strict=True)
+                    ],
+                    "finest_levels": finest_gci.to_dict() if finest_gci else None,
+                },
+                "roundoff": {
+                    "error": round_error,
+                    "bound": _number(rounding["bound"][q]),
+                    "float32_difference": _number(
+                        abs(rounding["float32"][q] - rounding["float64"][q])
+                    ),
+                    "method": rounding["method"],
+                },
+                "parameter": {
+                    "sd": sd,
+                    "mean": spreads[q]["mean"],
+                    "low": spreads[q]["low"],
+                    "high": spreads[q]["high"],
+                    "level": case.budget.level,
+                    "indices": {k: v for k, v in indices[q].items() if not k.startswith("_")},
+                    "indices_converged": indices[q].get("_convergence", {}).get("agree"),
+                    "computed_on": REFERENCE_NOTE,
+                },
+                "numerical_to_parameter": ratio,
+                "allowance": case.budget.fraction * sd if sd else None,
+                "combined": _rss(numerical, sd),
+                "shares": _shares(pct, round_error, sd),
+                "adequate": bool(ratio is not None and ratio <= case.budget.fraction),
+            }
+        )
     artefact_flags = [f for f in flags if f["code"] in ARTEFACT_CODES]
     verdict = _verdict(case, quantities, artefact_flags, recommendation)
-    for q, item in enumerate(quantities):
+    for item in quantities:
         if item["value"] is None:
-            flags.append({"code": "undefined-quantity", "message": (
-                f'"{item["name"]}" has no value at nominal parameters '
-                "(the level is never reached within the horizon, or the run diverged)")})
+            flags.append(
+                {
+                    "code": "undefined-quantity",
+                    "message": (
+                        f'"{item["name"]}" has no value at nominal parameters '
+                        "(the level is never reached within the horizon, or the run diverged)"
+                    ),
+                }
+            )
     if any(steps_info["off_grid"]):
-        flags.append({"code": "off-grid", "message": (
-            "a requested time falls between grid points; values there are read from the "
-            "cubic Hermite interpolant of the step's end values")})
+        flags.append(
+            {
+                "code": "off-grid",
+                "message": (
+                    "a requested time falls between grid points; values there are read from the "
+                    "cubic Hermite interpolant of the step's end values"
+                ),
+            }
+        )
     stable = limits["stable"]
     monotone = limits["monotone"]
     data = {
@@ -235,12 +295,18 @@ def assemble(case: Case, *, scheme, steps_info, case_values, reference, errors, 
         "validation": None,
         "stability": {
             "equilibrium": limits["equilibrium"] or None,
-            "stable_step": {"value": _number(np.min(stable)) if stable.size else None,
-                            "unit": case.time_unit},
-            "stable_step_nominal": {"value": _number(stable[0]) if stable.size else None,
-                                    "unit": case.time_unit},
-            "monotone_step": {"value": _number(np.min(monotone)) if monotone.size else None,
-                              "unit": case.time_unit},
+            "stable_step": {
+                "value": _number(np.min(stable)) if stable.size else None,
+                "unit": case.time_unit,
+            },
+            "stable_step_nominal": {
+                "value": _number(stable[0]) if stable.size else None,
+                "unit": case.time_unit,
+            },
+            "monotone_step": {
+                "value": _number(np.min(monotone)) if monotone.size else None,
+                "unit": case.time_unit,
+            },
             "note": "smallest over the parameter ensemble (the strictest member)",
         },
         "trajectory_error": {
@@ -249,14 +315,24 @@ def assemble(case: Case, *, scheme, steps_info, case_values, reference, errors, 
             "unit": case.population_unit,
         },
         "recommendation": {
-            "tried": [{"step": {"value": t["step"], "unit": case.time_unit},
-                       "adequate": t["adequate"], "worst_ratio": t.get("worst_ratio"),
-                       "artefacts": t.get("artefacts", []), "note": t.get("note")}
-                      for t in recommendation["tried"]],
-            "half_step_check": None if recommendation["half_check"] is None else {
+            "tried": [
+                {
+                    "step": {"value": t["step"], "unit": case.time_unit},
+                    "adequate": t["adequate"],
+                    "worst_ratio": t.get("worst_ratio"),
+                    "artefacts": t.get("artefacts", []),
+                    "note": t.get("note"),
+                }
+                for t in recommendation["tried"]
+            ],
+            "cost": _cost(case, recommendation),
+            "half_step_check": None
+            if recommendation["half_check"] is None
+            else {
                 "step": {"value": recommendation["half_check"]["step"], "unit": case.time_unit},
                 "adequate": recommendation["half_check"]["adequate"],
-                "worst_ratio": recommendation["half_check"]["worst_ratio"]},
+                "worst_ratio": recommendation["half_check"]["worst_ratio"],
+            },
         },
         "run": {
             "package": "errbudget",
@@ -271,6 +347,36 @@ def assemble(case: Case, *, scheme, steps_info, case_values, reference, errors, 
         },
     }
     return clean(data)
+
+
+def _cost(case: Case, recommendation: dict) -> dict | None:
+    """Throughput measured during the step search, and one run's time at each step."""
+    timed = [t for t in recommendation["tried"] if t.get("seconds")]
+    if not timed:
+        return None
+    throughput = sum(t["member_steps"] for t in timed) / sum(t["seconds"] for t in timed)
+    members = timed[0]["member_steps"] / n_steps_for(case.horizon, timed[0]["step"])
+    rec = recommendation["step"]
+
+    def seconds_per_run(step):
+        return n_steps_for(case.horizon, step) / throughput
+
+    return {
+        "member_steps_per_second": throughput,
+        "runs_per_second_at_case_step": throughput / n_steps_for(case.horizon, case.step),
+        "runs_per_second_at_recommended_step": None
+        if rec is None
+        else throughput / n_steps_for(case.horizon, rec),
+        "steps_per_run": {
+            "case": n_steps_for(case.horizon, case.step),
+            "recommended": None if rec is None else n_steps_for(case.horizon, rec),
+        },
+        "ensemble_seconds_at_case_step": seconds_per_run(case.step) * members,
+        "ensemble_seconds_at_recommended_step": None
+        if rec is None
+        else seconds_per_run(rec) * members,
+        "note": "one run = one parameter set over the horizon, measured in this run's step search",
+    }
 
 
 def _richardson_nominal(column: np.ndarray, order: int) -> float | None:
@@ -313,33 +419,45 @@ def _shares(disc, rounding, sd) -> dict | None:
     return {k: (v * v / total if total > 0 else 0.0) for k, v in parts.items()}
 
 
-def _verdict(case: Case, quantities: list[dict], artefact_flags: list[dict],
-             recommendation: dict) -> dict:
+def _verdict(
+    case: Case, quantities: list[dict], artefact_flags: list[dict], recommendation: dict
+) -> dict:
     fraction = case.budget.fraction
     ratios = [(q["numerical_to_parameter"], q) for q in quantities]
     undefined = [q for r, q in ratios if r is None]
-    binding = max((pair for pair in ratios if pair[0] is not None), key=lambda p: p[0],
-                  default=(None, None))[1]
-    adequate = not undefined and not artefact_flags and all(
-        r <= fraction for r, _ in ratios)
+    binding = max(
+        (pair for pair in ratios if pair[0] is not None), key=lambda p: p[0], default=(None, None)
+    )[1]
+    adequate = not undefined and not artefact_flags and all(r <= fraction for r, _ in ratios)
     step_text = f"{plain_step(case.step)} {case.time_unit}"
     rec = recommendation["step"]
-    rec_text = (f"The coarsest adequate step is {plain_step(rec)} {case.time_unit}."
-                if rec is not None else
-                f"No candidate step qualifies: {recommendation['reason']}.")
+    rec_text = (
+        f"The coarsest adequate step is {plain_step(rec)} {case.time_unit}."
+        if rec is not None
+        else f"No candidate step qualifies: {recommendation['reason']}."
+    )
     if undefined:
         q = undefined[0]
-        first = (f'At {step_text}, the numerical error of "{q["name"]}" cannot be set against '
-                 "its parameter spread (the error or the spread is undefined or zero): the "
-                 "step cannot be judged adequate.")
+        first = (
+            f'At {step_text}, the numerical error of "{q["name"]}" cannot be set against '
+            "its parameter spread (the error or the spread is undefined or zero): the "
+            "step cannot be judged adequate."
+        )
     elif binding is not None:
         numerical = binding["numerical_to_parameter"] * binding["parameter"]["sd"]
         times = binding["numerical_to_parameter"] / fraction
-        verdict_text = "the step is adequate" if adequate else (
-            "the step is too coarse" if times > 1 else "but artefacts make the step inadequate")
-        first = (f'At {step_text}, the numerical error of "{binding["name"]}" is '
-                 f'{numerical:.3g} {binding["unit"]}, {times:.2g} times the '
-                 f"{fraction:.0%} allowance of its parameter spread: {verdict_text}.")
+        verdict_text = (
+            "the step is adequate"
+            if adequate
+            else (
+                "the step is too coarse" if times > 1 else "but artefacts make the step inadequate"
+            )
+        )
+        first = (
+            f'At {step_text}, the numerical error of "{binding["name"]}" is '
+            f"{numerical:.3g} {binding['unit']}, {times:.2g} times the "
+            f"{fraction:.0%} allowance of its parameter spread: {verdict_text}."
+        )
     else:
         first = f"At {step_text}, no quantity could be evaluated."
     if artefact_flags:

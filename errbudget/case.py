@@ -19,7 +19,14 @@ from errbudget import models
 from errbudget.distributions import KINDS, Distribution
 from errbudget.errors import InputError, did_you_mean
 from errbudget.schemes import get_scheme
-from errbudget.units import ensure_count_units, format_unit, parse_quantity, parse_unit, ureg
+from errbudget.units import (
+    check_population_unit,
+    ensure_count_units,
+    format_unit,
+    parse_quantity,
+    parse_unit,
+    ureg,
+)
 
 TOP_KEYS = ("title", "model", "parameters", "simulation", "quantity", "budget", "counts")
 MODEL_KEYS = ("form", "unit", "rate")
@@ -34,8 +41,12 @@ MAX_CASE_BYTES = 1_000_000  # a case file is a few kilobytes; refuse anything ab
 DEFAULT_MEMORY_LIMIT_MB = 4096  # resource ceiling for one run, overridable per case
 
 # Parameters that must be strictly positive, by name, for the built-in laws.
-POSITIVE = {"K": "a carrying capacity", "N0": "an initial population", "A": "an Allee threshold",
-            "theta": "a shape exponent"}
+POSITIVE = {
+    "K": "a carrying capacity",
+    "N0": "an initial population",
+    "A": "an Allee threshold",
+    "theta": "a shape exponent",
+}
 NON_NEGATIVE = {"E": "a harvest rate", "H": "a removal rate"}
 
 
@@ -167,12 +178,24 @@ class _Reader:
                 where,
             ) from None
 
-    def number(self, data: dict, key: str, where: str, default, low=None, high=None,
-               integer=False, low_open=True, accepted=""):
+    def number(
+        self,
+        data: dict,
+        key: str,
+        where: str,
+        default,
+        low=None,
+        high=None,
+        integer=False,
+        low_open=True,
+        accepted="",
+    ):
         value = data.get(key, default)
         full = f"{where}.{key}"
-        if isinstance(value, bool) or not isinstance(value, int | float) or (
-            integer and not isinstance(value, int)
+        if (
+            isinstance(value, bool)
+            or not isinstance(value, int | float)
+            or (integer and not isinstance(value, int))
         ):
             kind = "an integer" if integer else "a number"
             raise self.fail(f"expected {kind}, got {value!r}{accepted}", full)
@@ -231,6 +254,7 @@ def load_case(path: str | Path) -> Case:
     try:
         ensure_count_units(unit_text)
         population = parse_unit(unit_text, "model.unit")
+        check_population_unit(population, unit_text, "model.unit")
     except InputError as error:
         raise error.located(reader.source, "model.unit") from None
 
@@ -243,8 +267,12 @@ def load_case(path: str | Path) -> Case:
     step_q = _time_quantity(reader, reader.required(sim, "step", "simulation"), "simulation.step")
     time_unit = step_q.units
     step = float(step_q.magnitude)
-    horizon = reader.quantity(reader.required(sim, "horizon", "simulation"), "simulation.horizon",
-                              time_unit, "a time span")
+    horizon = reader.quantity(
+        reader.required(sim, "horizon", "simulation"),
+        "simulation.horizon",
+        time_unit,
+        "a time span",
+    )
     if step <= 0:
         raise reader.fail(f"the step must be positive, got {step_q:P}", "simulation.step")
     if horizon <= 0:
@@ -320,8 +348,12 @@ def _builtin_parameters(reader, model, table, population, time_unit) -> dict[str
         models.FLUX: population / time_unit,
         models.PURE: ureg.dimensionless,
     }
-    meanings = {models.RATE: "a rate (per time)", models.POPULATION: "a population level",
-                models.FLUX: "a flux (population per time)", models.PURE: "a pure number"}
+    meanings = {
+        models.RATE: "a rate (per time)",
+        models.POPULATION: "a population level",
+        models.FLUX: "a flux (population per time)",
+        models.PURE: "a pure number",
+    }
     parameters = {}
     for name in expected:
         where = f"parameters.{name}"
@@ -337,8 +369,9 @@ def _custom_model(reader, rate_text, table, population, time_unit):
     from errbudget import expr  # custom laws only; keeps built-in runs light
 
     if not isinstance(rate_text, str):
-        raise reader.fail('form = "custom" needs a rate expression, e.g. rate = "r*N*(1 - N/K)"',
-                          "model.rate")
+        raise reader.fail(
+            'form = "custom" needs a rate expression, e.g. rate = "r*N*(1 - N/K)"', "model.rate"
+        )
     try:
         used = expr.names_in(rate_text)
     except InputError as error:
@@ -355,8 +388,9 @@ def _custom_model(reader, rate_text, table, population, time_unit):
         raise reader.fail("missing parameter 'N0' (the initial population)", "parameters.N0")
     for name in allowed:
         if name not in used:
-            raise reader.fail(f"parameter {name!r} is not used by the rate expression",
-                              f"parameters.{name}")
+            raise reader.fail(
+                f"parameter {name!r} is not used by the rate expression", f"parameters.{name}"
+            )
     try:
         expression = expr.parse_rate(rate_text, allowed)
     except InputError as error:
@@ -368,8 +402,14 @@ def _custom_model(reader, rate_text, table, population, time_unit):
         given_unit = _given_unit(reader, name, table[name])
         parameters[name] = _parameter(reader, name, table[name], given_unit, "this parameter")
     units = {"N": population, "t": time_unit}
-    units.update({name: ureg.Unit(parameters[name].unit) if parameters[name].unit != "1"
-                  else ureg.dimensionless for name in allowed})
+    units.update(
+        {
+            name: ureg.Unit(parameters[name].unit)
+            if parameters[name].unit != "1"
+            else ureg.dimensionless
+            for name in allowed
+        }
+    )
     try:
         result = expression.result_unit(units, "model.rate")
     except InputError as error:
@@ -398,8 +438,9 @@ def _custom_model(reader, rate_text, table, population, time_unit):
     def d_dn(t, n, p):
         return expression.d_dN(t * t_factor, n * n_factor, coherent(p)) * (out_factor * n_factor)
 
-    model = models.GrowthModel("custom", f"dN/dt = {rate_text}", {n: "custom" for n in allowed},
-                               rate, d_dn)
+    model = models.GrowthModel(
+        "custom", f"dN/dt = {rate_text}", {n: "custom" for n in allowed}, rate, d_dn
+    )
     return model, parameters
 
 
@@ -427,7 +468,9 @@ def _parameter(reader, name, entry, unit, meaning) -> Parameter:
     reader.table(entry, where, TABLE_KEYS)
 
     def get(key):
-        return reader.quantity(entry[key], f"{where}.{key}", unit, meaning) if key in entry else None
+        return (
+            reader.quantity(entry[key], f"{where}.{key}", unit, meaning) if key in entry else None
+        )
 
     value, sd, low, high, mode = (get(k) for k in ("value", "sd", "low", "high", "mode"))
     cv = None
@@ -435,8 +478,11 @@ def _parameter(reader, name, entry, unit, meaning) -> Parameter:
         cv = reader.number(entry, "cv", where, None, low=0, accepted="; cv is a positive number")
     kind = entry.get("dist")
     if kind is not None and kind not in KINDS:
-        raise reader.fail(f"unknown distribution {kind!r}{did_you_mean(str(kind), KINDS)}; "
-                          "accepted: " + ", ".join(KINDS), f"{where}.dist")
+        raise reader.fail(
+            f"unknown distribution {kind!r}{did_you_mean(str(kind), KINDS)}; "
+            "accepted: " + ", ".join(KINDS),
+            f"{where}.dist",
+        )
     if kind is None:
         spread_given = sd is not None or cv is not None
         if mode is not None:
@@ -450,7 +496,7 @@ def _parameter(reader, name, entry, unit, meaning) -> Parameter:
         else:
             raise reader.fail(
                 "an uncertain parameter needs sd or cv (normal), low and high (uniform), "
-                "low, mode and high (triangular), or dist = \"lognormal\" with cv or sd",
+                'low, mode and high (triangular), or dist = "lognormal" with cv or sd',
                 where,
             )
     if cv is not None:
@@ -463,8 +509,11 @@ def _parameter(reader, name, entry, unit, meaning) -> Parameter:
         raise reader.fail("sd must be positive", f"{where}.sd")
 
     def need(*keys):
-        for key, val in zip(keys, (dict(value=value, sd=sd, low=low, high=high, mode=mode)[k]
-                                   for k in keys), strict=True):
+        for key, val in zip(
+            keys,
+            (dict(value=value, sd=sd, low=low, high=high, mode=mode)[k] for k in keys),
+            strict=True,
+        ):
             if val is None:
                 missing = "sd or cv" if key == "sd" else key
                 raise reader.fail(f"a {kind} distribution needs {missing}", f"{where}.{key}")
@@ -482,8 +531,13 @@ def _parameter(reader, name, entry, unit, meaning) -> Parameter:
         dist = Distribution(kind, mode if value is None else value, low=low, high=high, mode=mode)
     else:
         need("value", "sd")
-        dist = Distribution(kind, value, sd=sd, low=-math.inf if low is None else low,
-                            high=math.inf if high is None else high)
+        dist = Distribution(
+            kind,
+            value,
+            sd=sd,
+            low=-math.inf if low is None else low,
+            high=math.inf if high is None else high,
+        )
     if dist.low >= dist.high:
         raise reader.fail("low must be below high", f"{where}.low")
     if kind == "triangular" and not dist.low <= dist.mode <= dist.high:
@@ -496,20 +550,25 @@ def _parameter(reader, name, entry, unit, meaning) -> Parameter:
 
 def _check_sign(reader, parameter: Parameter, where: str) -> None:
     name = parameter.name
-    lowest = parameter.nominal if parameter.dist is None else min(
-        parameter.nominal, parameter.dist.low if math.isfinite(parameter.dist.low)
-        else parameter.nominal)
+    lowest = (
+        parameter.nominal
+        if parameter.dist is None
+        else min(
+            parameter.nominal,
+            parameter.dist.low if math.isfinite(parameter.dist.low) else parameter.nominal,
+        )
+    )
     if name in POSITIVE and lowest <= 0:
         raise reader.fail(f"{POSITIVE[name]} must be positive, got {parameter.given}", where)
     if name in NON_NEGATIVE and lowest < 0:
-        raise reader.fail(f"{NON_NEGATIVE[name]} cannot be negative, got {parameter.given}",
-                          where)
+        raise reader.fail(f"{NON_NEGATIVE[name]} cannot be negative, got {parameter.given}", where)
 
 
 def _quantities(reader, entries, population, time_unit, horizon) -> tuple[QuantitySpec, ...]:
     if entries is None:
-        raise reader.fail("at least one [[quantity]] is needed (what the forecast is for)",
-                          "quantity")
+        raise reader.fail(
+            "at least one [[quantity]] is needed (what the forecast is for)", "quantity"
+        )
     if not isinstance(entries, list) or not entries:
         raise reader.fail("write quantities as [[quantity]] tables", "quantity")
     specs, names = [], set()
@@ -522,22 +581,32 @@ def _quantities(reader, entries, population, time_unit, horizon) -> tuple[Quanti
         names.add(name)
         kind = reader.text(entry, "kind", where)
         if kind not in QUANTITY_KINDS:
-            raise reader.fail(f"unknown kind {kind!r}{did_you_mean(kind, QUANTITY_KINDS)}; "
-                              "accepted: " + ", ".join(QUANTITY_KINDS), f"{where}.kind")
+            raise reader.fail(
+                f"unknown kind {kind!r}{did_you_mean(kind, QUANTITY_KINDS)}; "
+                "accepted: " + ", ".join(QUANTITY_KINDS),
+                f"{where}.kind",
+            )
         at = level = None
         if kind == "value":
-            at = reader.quantity(reader.required(entry, "at", where), f"{where}.at", time_unit,
-                                 "a time")
+            at = reader.quantity(
+                reader.required(entry, "at", where), f"{where}.at", time_unit, "a time"
+            )
             if not 0 < at <= horizon * (1 + 1e-12):
                 raise reader.fail(
                     f"at = {at:g} {format_unit(time_unit)} is outside the horizon "
-                    f"(0, {horizon:g}] {format_unit(time_unit)}", f"{where}.at")
+                    f"(0, {horizon:g}] {format_unit(time_unit)}",
+                    f"{where}.at",
+                )
             at = min(at, horizon)
         elif "at" in entry:
-            raise reader.fail(f'"at" is only used with kind = "value"', f"{where}.at")
+            raise reader.fail('"at" is only used with kind = "value"', f"{where}.at")
         if kind == "time-to":
-            level = reader.quantity(reader.required(entry, "level", where), f"{where}.level",
-                                    population, "a population level")
+            level = reader.quantity(
+                reader.required(entry, "level", where),
+                f"{where}.level",
+                population,
+                "a population level",
+            )
             if level <= 0:
                 raise reader.fail("the level must be positive", f"{where}.level")
         elif "level" in entry:
@@ -550,19 +619,68 @@ def _budget(reader, table) -> BudgetSpec:
     table = reader.table(table, "budget", BUDGET_KEYS)
     defaults = BudgetSpec()
     return BudgetSpec(
-        fraction=float(reader.number(table, "fraction", "budget", defaults.fraction, low=0,
-                                     high=1, accepted="; accepted: 0 < fraction <= 1")),
-        samples=reader.number(table, "samples", "budget", defaults.samples, low=0, integer=True,
-                              accepted="; accepted: a power of two such as 512 or 1024"),
-        seed=reader.number(table, "seed", "budget", defaults.seed, low=0, integer=True,
-                           low_open=False, accepted="; accepted: an integer >= 0"),
-        percentile=float(reader.number(table, "percentile", "budget", defaults.percentile,
-                                       low=0, high=100, accepted="; accepted: 0 < p <= 100")),
-        level=float(reader.number(table, "level", "budget", defaults.level, low=0, high=0.999,
-                                  accepted="; accepted: 0 < level < 1")),
-        memory_limit_mb=float(reader.number(table, "memory_limit", "budget",
-                                            defaults.memory_limit_mb, low=0,
-                                            accepted="; accepted: megabytes, e.g. 2048")),
+        fraction=float(
+            reader.number(
+                table,
+                "fraction",
+                "budget",
+                defaults.fraction,
+                low=0,
+                high=1,
+                accepted="; accepted: 0 < fraction <= 1",
+            )
+        ),
+        samples=reader.number(
+            table,
+            "samples",
+            "budget",
+            defaults.samples,
+            low=0,
+            integer=True,
+            accepted="; accepted: a power of two such as 512 or 1024",
+        ),
+        seed=reader.number(
+            table,
+            "seed",
+            "budget",
+            defaults.seed,
+            low=0,
+            integer=True,
+            low_open=False,
+            accepted="; accepted: an integer >= 0",
+        ),
+        percentile=float(
+            reader.number(
+                table,
+                "percentile",
+                "budget",
+                defaults.percentile,
+                low=0,
+                high=100,
+                accepted="; accepted: 0 < p <= 100",
+            )
+        ),
+        level=float(
+            reader.number(
+                table,
+                "level",
+                "budget",
+                defaults.level,
+                low=0,
+                high=0.999,
+                accepted="; accepted: 0 < level < 1",
+            )
+        ),
+        memory_limit_mb=float(
+            reader.number(
+                table,
+                "memory_limit",
+                "budget",
+                defaults.memory_limit_mb,
+                low=0,
+                accepted="; accepted: megabytes, e.g. 2048",
+            )
+        ),
     )
 
 
@@ -575,21 +693,30 @@ def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
     base = reader.path.resolve().parent
     resolved = given if given.is_absolute() else (base / given).resolve()
     if not given.is_absolute() and not resolved.is_relative_to(base):
-        raise reader.fail("a relative counts path must stay inside the case's folder; "
-                          "give an absolute path to use a file elsewhere", "counts.file")
-    file_unit = _time_quantity(reader, "1 " + reader.text(table, "time_unit", "counts",
-                                                          default="day"), "counts.time_unit")
+        raise reader.fail(
+            "a relative counts path must stay inside the case's folder; "
+            "give an absolute path to use a file elsewhere",
+            "counts.file",
+        )
+    file_unit = _time_quantity(
+        reader, "1 " + reader.text(table, "time_unit", "counts", default="day"), "counts.time_unit"
+    )
     error = reader.text(table, "error", "counts", default="poisson")
     if error not in ERROR_MODELS:
-        raise reader.fail(f"unknown observation model {error!r}{did_you_mean(error, ERROR_MODELS)}"
-                          "; accepted: " + ", ".join(ERROR_MODELS), "counts.error")
+        raise reader.fail(
+            f"unknown observation model {error!r}{did_you_mean(error, ERROR_MODELS)}"
+            "; accepted: " + ", ".join(ERROR_MODELS),
+            "counts.error",
+        )
     fit = reader.required(table, "fit", "counts")
     if not isinstance(fit, list) or not fit or not all(isinstance(n, str) for n in fit):
         raise reader.fail('expected a list of parameter names such as ["r", "K"]', "counts.fit")
     for name in fit:
         if name not in parameters:
-            raise reader.fail(f"cannot fit {name!r}: not a parameter"
-                              f"{did_you_mean(name, parameters)}", "counts.fit")
+            raise reader.fail(
+                f"cannot fit {name!r}: not a parameter{did_you_mean(name, parameters)}",
+                "counts.fit",
+            )
     if len(set(fit)) != len(fit):
         raise reader.fail("a parameter is listed twice", "counts.fit")
     start = table.get("start")
@@ -598,8 +725,9 @@ def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
         try:
             np.datetime64(start)
         except ValueError:
-            raise reader.fail(f"{start!r} is not an ISO date such as 2026-04-01",
-                              "counts.start") from None
+            raise reader.fail(
+                f"{start!r} is not an ISO date such as 2026-04-01", "counts.start"
+            ) from None
     return CountsSpec(
         path=resolved,
         time_column=reader.text(table, "time", "counts", default="time"),
@@ -635,8 +763,10 @@ def describe(case: Case) -> str:
             detail = f"level {q.level:g} {case.population_unit}"
         lines.append(f"    {q.name}: {q.kind} {detail} [{case.quantity_unit(q)}]".rstrip())
     b = case.budget
-    lines.append(f"  budget: fraction {b.fraction:g}, samples {b.samples}, seed {b.seed}, "
-                 f"percentile {b.percentile:g}, level {b.level:g}")
+    lines.append(
+        f"  budget: fraction {b.fraction:g}, samples {b.samples}, seed {b.seed}, "
+        f"percentile {b.percentile:g}, level {b.level:g}"
+    )
     if case.counts:
         c = case.counts
         lines.append(f"  counts: {c.path.name} ({c.error}), fitting {', '.join(c.fit)}")

@@ -20,15 +20,23 @@ class _Parser(argparse.ArgumentParser):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(prog="errbudget", description=(
-        "Is the time step of a population forecast small enough, given the data? "
-        "Splits forecast uncertainty into discretisation, parameter and round-off parts."))
+    parser = _Parser(
+        prog="errbudget",
+        description=(
+            "Is the time step of a population forecast small enough, given the data? "
+            "Splits forecast uncertainty into discretisation, parameter and round-off parts."
+        ),
+    )
     parser.add_argument("--version", action="store_true", help="print the version and stop")
     commands = parser.add_subparsers(dest="command", parser_class=_Parser)
     run = commands.add_parser("run", help="compute the error budget of each case")
     run.add_argument("cases", nargs="+", metavar="CASE", type=Path)
-    run.add_argument("--out", type=Path, default=Path(DEFAULT_OUT),
-                     help="folder for the outputs (default: reports/)")
+    run.add_argument(
+        "--out",
+        type=Path,
+        default=Path(DEFAULT_OUT),
+        help="folder for the outputs (default: reports/)",
+    )
     run.add_argument("--samples", type=_positive_int, help="base sample size of the Sobol design")
     run.add_argument("--seed", type=_non_negative_int, help="seed of the sampling design")
     run.add_argument("--quiet", action="store_true", help="no progress on stderr")
@@ -63,8 +71,9 @@ def main(argv: list[str] | None = None) -> int:
             print(f"errbudget {__version__}")
             return EXIT_OK
         if args.command is None:
-            raise InputError("choose a command: run or check (see errbudget --help)",
-                             "command line")
+            raise InputError(
+                "choose a command: run or check (see errbudget --help)", "command line"
+            )
         from errbudget.case import load_case
 
         cases = [load_case(path) for path in args.cases]  # all valid before anything runs
@@ -95,8 +104,13 @@ def _progress(quiet: bool, title: str):
         return None, None
     from tqdm import tqdm
 
-    bar = tqdm(total=8, desc=title[:30], file=sys.stderr, leave=False,
-               bar_format="{desc}: {n_fmt}/{total_fmt} {postfix}")
+    bar = tqdm(
+        total=8,
+        desc=title[:30],
+        file=sys.stderr,
+        leave=False,
+        bar_format="{desc}: {n_fmt}/{total_fmt} {postfix}",
+    )
 
     def say(label: str) -> None:
         bar.set_postfix_str(label)

@@ -183,15 +183,24 @@ def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[t
     try:
         text = raw.decode("utf-8-sig")  # spreadsheet exports often start with a byte-order mark
     except UnicodeDecodeError as error:
+        line = raw[: error.start].count(b"\n") + 1
         raise InputError(
-            f"{where} file is not UTF-8 text (byte {error.start} cannot be decoded); "
+            f"{where} file is not UTF-8 text (a byte on this line cannot be decoded); "
             "save it as UTF-8 CSV",
             source=source,
+            where=f"line {line}",
         ) from None
     if not text.strip():
-        raise InputError(f"{where} file is empty; expected a header line and data rows",
-                         source=source)
+        raise InputError(
+            f"{where} file is empty; expected a header line and data rows", source=source
+        )
     first_line = text.splitlines()[0]
+    if not first_line.strip():
+        raise InputError(
+            "line 1 is empty; the first line must hold the column names",
+            source=source,
+            where="line 1",
+        )
     delimiter = max(_DELIMITERS, key=first_line.count)
     try:
         # Everything as text, blank lines kept, so that row i of the table is line i + 1.
@@ -220,8 +229,11 @@ def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[t
     ]
     header = cells[0]
     if all(name == "" for name in header):
-        raise InputError("line 1 is empty; the first line must hold the column names",
-                         source=source, where="line 1")
+        raise InputError(
+            "line 1 holds no column names; the first line must name the columns",
+            source=source,
+            where="line 1",
+        )
     return header, [(number + 2, row) for number, row in enumerate(cells[1:])]
 
 
@@ -229,8 +241,11 @@ def _column_index(header: list[str], name: str, source: str) -> int:
     """Position of column ``name`` in the header, or an error listing the columns present."""
     positions = [i for i, column in enumerate(header) if column == name]
     if len(positions) > 1:
-        raise InputError(f'column "{name}" appears {len(positions)} times in the header',
-                         source=source, where="line 1")
+        raise InputError(
+            f'column "{name}" appears {len(positions)} times in the header',
+            source=source,
+            where="line 1",
+        )
     if not positions:
         present = ", ".join(f'"{column}"' for column in header if column)
         raise InputError(
@@ -245,8 +260,9 @@ def _column_index(header: list[str], name: str, source: str) -> int:
 def _number(cell: str, source: str, where: str, expected: str = "a number") -> float:
     """A finite float from one cell, or an error saying what is wrong with the cell."""
     if cell.lower() in MISSING_TOKENS:
-        raise InputError("value is missing; fill it in or delete the row",
-                         source=source, where=where)
+        raise InputError(
+            "value is missing; fill it in or delete the row", source=source, where=where
+        )
     try:
         value = float(cell)
     except ValueError:
@@ -259,8 +275,9 @@ def _number(cell: str, source: str, where: str, expected: str = "a number") -> f
 def _parse_date(cell: str, source: str, where: str) -> datetime:
     """An ISO 8601 date or date-time; aware values are converted to naive UTC."""
     if cell.lower() in MISSING_TOKENS:
-        raise InputError("value is missing; fill it in or delete the row",
-                         source=source, where=where)
+        raise InputError(
+            "value is missing; fill it in or delete the row", source=source, where=where
+        )
     try:
         if not _ISO_DATE.match(cell):
             raise ValueError(cell)
@@ -312,16 +329,14 @@ def _elapsed_times(
     if days_to_internal is None or not (math.isfinite(days_to_internal) and days_to_internal > 0):
         raise ValueError("days_to_internal (a positive float) is needed when the times are dates")
     moments = [_parse_date(cell, source, place) for cell, place in zip(cells, places, strict=True)]
-    if start is None:
-        origin = moments[0]
-    else:
-        origin = _parse_date(str(start), None, f"[{where}] start")
+    origin = moments[0] if start is None else _parse_date(str(start), None, f"[{where}] start")
     times = []
     for cell, place, moment in zip(cells, places, moments, strict=True):
         days = (moment - origin).total_seconds() / SECONDS_PER_DAY
         if days < 0:
-            raise InputError(f"date {cell} is before the start {origin.isoformat()}",
-                             source=source, where=place)
+            raise InputError(
+                f"date {cell} is before the start {origin.isoformat()}", source=source, where=place
+            )
         times.append(days * days_to_internal)
     return times
 

@@ -17,8 +17,13 @@ def n_steps_for(horizon: float, step: float) -> int:
     return max(1, math.ceil(horizon / step - 1e-9))
 
 
-def solve(case: Case, params: Mapping[str, np.ndarray], step: float,
-          scheme: Scheme | None = None, dtype: type = np.float64) -> Trajectory:
+def solve(
+    case: Case,
+    params: Mapping[str, np.ndarray],
+    step: float,
+    scheme: Scheme | None = None,
+    dtype: type = np.float64,
+) -> Trajectory:
     """Integrate the case's law for every member of ``params`` (which includes N0).
 
     Parameters
@@ -35,8 +40,15 @@ def solve(case: Case, params: Mapping[str, np.ndarray], step: float,
     """
     scheme = scheme or get_scheme(case.scheme)
     law = {name: np.asarray(value, dtype=dtype) for name, value in params.items() if name != "N0"}
-    states = integrate(case.model.rate, params["N0"], law, step,
-                       n_steps_for(case.horizon, step), scheme, dtype=dtype)
+    states = integrate(
+        case.model.rate,
+        params["N0"],
+        law,
+        step,
+        n_steps_for(case.horizon, step),
+        scheme,
+        dtype=dtype,
+    )
     return Trajectory(states, step, case.horizon, case.model.rate, law)
 
 
@@ -58,5 +70,7 @@ def nominal_params(case: Case) -> dict[str, np.ndarray]:
 def ensemble_params(case: Case, sampled: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
     """Sampled values for the uncertain inputs, nominal values broadcast for the fixed ones."""
     size = len(next(iter(sampled.values()))) if sampled else 1
-    return {name: np.asarray(sampled[name], dtype=float) if name in sampled
-            else np.full(size, value) for name, value in case.nominal().items()}
+    return {
+        name: np.asarray(sampled[name], dtype=float) if name in sampled else np.full(size, value)
+        for name, value in case.nominal().items()
+    }

@@ -497,6 +497,8 @@ def _finish(out: Value, n: np.ndarray, inputs: Mapping[str, Any]) -> np.ndarray:
 class RateExpression:
     """A checked custom rate dN/dt = f(t, N; parameters) [population unit / time unit].
 
+    Build it with :func:`parse_rate`; the evaluators assume a tree that passed its checks.
+
     Attributes
     ----------
     text : str
@@ -537,7 +539,8 @@ class RateExpression:
         Parameters
         ----------
         t : float
-            Time [time unit]; a scalar.
+            Time [time unit]; a Python float or a scalar of N's dtype, so that it does not
+            promote the result.
         N : numpy.ndarray, shape (S,)
             Population of each ensemble member [population unit]; its dtype is kept when
             the parameters are Python floats or arrays of the same dtype.

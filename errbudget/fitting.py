@@ -8,9 +8,12 @@ nuisance parameter of the observation model (none for Poisson).
 
 Positive parameters are estimated on the ln scale, where the likelihood is more nearly
 quadratic. The uncertainty of the estimates is the inverse of the observed information
-(the numerical Hessian of -l at the optimum; Pawitan 2001, In All Likelihood, Oxford,
-ch. 2.5 and 9); where that matrix is not usable, a parametric bootstrap (Efron & Tibshirani
-1993, An Introduction to the Bootstrap, Chapman & Hall, ch. 6, doi:10.1201/9780429246593).
+(the numerical Hessian of -l at the optimum; Pawitan 2001, In All Likelihood: Statistical
+Modelling and Inference Using Likelihood, Oxford University Press); where that matrix is not
+usable, a parametric bootstrap (Efron & Tibshirani 1993, An Introduction to the Bootstrap,
+Chapman & Hall, ch. 6). The covariance of the natural-scale estimates follows by the delta
+method, cov = diag(v) cov_ln diag(v), v the estimates (Casella & Berger 2002, Statistical
+Inference, 2nd ed., section 5.5.4, recalled).
 Numerical failure is returned as data (``converged=False`` and a message), never raised.
 """
 
@@ -37,11 +40,15 @@ MAX_CONDITION = 1e10  # common practice, no source: beyond this the inverse is m
 HESSIAN_STEP = 1e-3  # central-difference step on the estimation scale (ln units when positive)
 GRADIENT_STEP = 1e-6  # central-difference step of the gradient used by the L-BFGS-B polish
 LOG_LIMIT = 700.0  # exp overflows binary64 just above 709
+# common practice, no source: a ln-scale sd above this (a 90 % interval wider than a factor
+# 700) means the quadratic approximation of the likelihood cannot be trusted.
+LOG_SD_LIMIT = 2.0
 RUNAWAY = 25.0  # ln-scale distance from the start (a factor 7e10) taken as "ran off to 0 or inf"
 N_SCREEN = 48  # random starting points screened in one batched call
 SCREEN_WIDTH = 1.0  # half-width of the screening cloud in ln units (a factor e either way)
 SIMPLEX_STEP = 0.2  # initial Nelder-Mead simplex edge [ln units, or relative for linear params]
 NM_ITERATIONS_PER_DIM = 400  # Nelder-Mead iteration budget per estimated quantity
+NB_DRAW_LIMIT = 1e12  # numpy's negative binomial sampler fails for huge k; this is Poisson
 PENALTY = 1e100  # finite stand-in for an infinite -ln L, so that line searches stay defined
 INTEGER_TOLERANCE = 1e-6  # Poisson / negative binomial counts must be whole numbers to this
 MIN_BOOTSTRAP_FRACTION = 0.5  # fewer successful refits than this share: no bootstrap estimate
@@ -200,7 +207,8 @@ def _log_terms(error: str, y: np.ndarray, mu: np.ndarray, nuisance: np.ndarray) 
     """ln p(y_i | mu_i, phi), shape (S, T); -inf where the model value is impossible.
 
     Poisson: y ln mu - mu - ln y!. Negative binomial with mean mu and dispersion k
-    (var = mu + mu^2 / k; Hilbe 2011, Negative Binomial Regression, 2nd ed., eq. 8.2):
+    (var = mu + mu^2 / k, the "NB2" form of Hilbe 2011, Negative Binomial Regression, 2nd
+    ed., Cambridge University Press):
     ln G(y + k) - ln G(k) - ln y! + k ln(k / (k + mu)) + y ln(mu / (k + mu)).
     Lognormal with median mu: ln y ~ N(ln mu, s^2). Normal: y ~ N(mu, s^2).
     """
@@ -211,10 +219,12 @@ def _log_terms(error: str, y: np.ndarray, mu: np.ndarray, nuisance: np.ndarray) 
         elif error == "negative-binomial":
             k = nuisance[:, :1]
             # ln G(y + k) - ln G(k) = ln G(y) - ln B(k, y) stays accurate for very large k.
-            rising = np.where(y > 0, gammaln(np.maximum(y, 1.0)) - betaln(k, np.maximum(y, 1.0)),
-                              0.0)
-            terms = (rising - gammaln(y + 1.0) - k * np.log1p(mu / k)
-                     + xlogy(y, mu) - xlogy(y, k + mu))
+            rising = np.where(
+                y > 0, gammaln(np.maximum(y, 1.0)) - betaln(k, np.maximum(y, 1.0)), 0.0
+            )
+            terms = (
+                rising - gammaln(y + 1.0) - k * np.log1p(mu / k) + xlogy(y, mu) - xlogy(y, k + mu)
+            )
             impossible = mu < 0
         elif error == "lognormal":
             s = nuisance[:, :1]
@@ -287,32 +297,47 @@ def _simplex(x0: np.ndarray, log_scale: np.ndarray) -> np.ndarray:
     return np.vstack([x0, x0 + np.diag(edges)])
 
 
-def _optimise(problem: _Problem, starts: Sequence[np.ndarray]):
+def _optimise(problem: _Problem, starts: Sequence[np.ndarray], restart: bool = True):
     """Nelder-Mead from each start, a restart from the best, then an L-BFGS-B polish.
+
+    Bootstrap refits skip the restart (they start at the original estimate already) and use
+    looser Nelder-Mead tolerances; the polish brings them to the optimum all the same.
 
     Returns (z, nll, nelder_mead_ok, polish_ok) for the best point found.
     """
     d = starts[0].size
     all_log = np.concatenate([problem.log_scale, np.ones(problem.n_nuisance, dtype=bool)])
     fun = _objective(problem)
-    options = {"xatol": 1e-7, "fatol": 1e-9, "maxiter": NM_ITERATIONS_PER_DIM * d}
+    tolerance = 1.0 if restart else 1e3
+    options = {
+        "xatol": 1e-7 * tolerance,
+        "fatol": 1e-9 * tolerance,
+        "maxiter": NM_ITERATIONS_PER_DIM * d,
+    }
     best = None
     for x0 in starts:
         if not np.isfinite(fun(x0)):
             continue
-        result = optimize.minimize(fun, x0, method="Nelder-Mead",
-                                   options={**options, "initial_simplex": _simplex(x0, all_log)})
+        result = optimize.minimize(
+            fun,
+            x0,
+            method="Nelder-Mead",
+            options={**options, "initial_simplex": _simplex(x0, all_log)},
+        )
         if best is None or result.fun <= best.fun:
             best = result
     if best is None:
         return starts[0], math.inf, False, False
-    # A restart with a fresh simplex guards against a simplex that collapsed too early.
-    result = optimize.minimize(fun, best.x, method="Nelder-Mead",
-                               options={**options, "initial_simplex": _simplex(best.x, all_log)})
-    if result.fun <= best.fun:
-        best = result
-    polish = optimize.minimize(_value_and_gradient(problem), best.x, jac=True,
-                               method="L-BFGS-B", options={"maxiter": 200})
+    if restart:  # a fresh simplex guards against one that collapsed too early
+        simplex = _simplex(best.x, all_log)
+        result = optimize.minimize(
+            fun, best.x, method="Nelder-Mead", options={**options, "initial_simplex": simplex}
+        )
+        if result.fun <= best.fun:
+            best = result
+    polish = optimize.minimize(
+        _value_and_gradient(problem), best.x, jac=True, method="L-BFGS-B", options={"maxiter": 200}
+    )
     polished = polish.success and polish.fun <= best.fun and polish.fun < PENALTY
     z = polish.x if polished else best.x
     return z, float(fun(z)), bool(best.success), bool(polished)
@@ -323,7 +348,7 @@ def _hessian(problem: _Problem, z: np.ndarray) -> np.ndarray | None:
 
     H_ii = (f(z + h_i) - 2 f(z) + f(z - h_i)) / h_i^2 and
     H_ij = (f(++) - f(+-) - f(-+) + f(--)) / (4 h_i h_j), error O(h^2) (Abramowitz &
-    Stegun 1964, Handbook of Mathematical Functions, eqs. 25.3.23 and 25.3.26).
+    Stegun 1964, Handbook of Mathematical Functions, eqs. 25.3.23 and 25.3.26, recalled).
     """
     d = z.size
     all_log = np.concatenate([problem.log_scale, np.ones(problem.n_nuisance, dtype=bool)])
@@ -332,8 +357,12 @@ def _hessian(problem: _Problem, z: np.ndarray) -> np.ndarray | None:
     pairs = [(i, j) for i in range(d) for j in range(i + 1, d)]
     rows = [z, *(z + shift), *(z - shift)]
     for i, j in pairs:
-        rows += [z + shift[i] + shift[j], z + shift[i] - shift[j],
-                 z - shift[i] + shift[j], z - shift[i] - shift[j]]
+        rows += [
+            z + shift[i] + shift[j],
+            z + shift[i] - shift[j],
+            z - shift[i] + shift[j],
+            z - shift[i] - shift[j],
+        ]
     f = problem.nll(np.array(rows))
     if not np.all(np.isfinite(f)):
         return None
@@ -357,27 +386,32 @@ def _information_covariance(hessian: np.ndarray | None, k: int) -> tuple[np.ndar
         return None, "the observed information is not positive definite"
     condition = np.linalg.cond(hessian)
     if not condition < MAX_CONDITION:
-        return None, (f"the observed information is ill-conditioned (condition number "
-                      f"{condition:.1e} > {MAX_CONDITION:.0e})")
+        return None, (
+            f"the observed information is ill-conditioned (condition number "
+            f"{condition:.1e} > {MAX_CONDITION:.0e})"
+        )
     inverse = linalg.cho_solve(factor, np.eye(hessian.shape[0]))
     return 0.5 * (inverse[:k, :k] + inverse[:k, :k].T), f"condition number {condition:.1e}"
 
 
-def _draw(error: str, mu: np.ndarray, phi: np.ndarray, rng: np.random.Generator,
-          n: int) -> np.ndarray:
+def _draw(
+    error: str, mu: np.ndarray, phi: np.ndarray, rng: np.random.Generator, n: int
+) -> np.ndarray:
     """``n`` synthetic count series (n, T) from the fitted observation model."""
     size = (n, mu.size)
     if error == "poisson":
         return rng.poisson(mu, size=size).astype(float)
     if error == "negative-binomial":
-        return rng.negative_binomial(phi[0], phi[0] / (phi[0] + mu), size=size).astype(float)
+        k = min(phi[0], NB_DRAW_LIMIT)
+        return rng.negative_binomial(k, k / (k + mu), size=size).astype(float)
     if error == "lognormal":
         return mu * np.exp(phi[0] * rng.standard_normal(size))
     return mu + phi[0] * rng.standard_normal(size)
 
 
-def _bootstrap(problem: _Problem, z: np.ndarray, n: int,
-               rng: np.random.Generator) -> tuple[np.ndarray | None, str]:
+def _bootstrap(
+    problem: _Problem, z: np.ndarray, n: int, rng: np.random.Generator
+) -> tuple[np.ndarray | None, str]:
     """Covariance (k, k) on the estimation scale of ``n`` refits to parametric resamples."""
     theta, phi = problem.split(z)
     mu = problem.model(theta)[0]
@@ -387,13 +421,14 @@ def _bootstrap(problem: _Problem, z: np.ndarray, n: int,
     for counts in _draw(problem.error, mu, phi[0], rng, n):
         if problem.error == "lognormal" and np.any(counts <= 0):
             continue
-        refit, value, nm_ok, polish_ok = _optimise(replace(problem, y=counts), [z])
+        refit, value, nm_ok, polish_ok = _optimise(replace(problem, y=counts), [z], restart=False)
         if np.isfinite(value) and (nm_ok or polish_ok):
             estimates.append(refit[: problem.k])
     needed = max(problem.k + 2, math.ceil(MIN_BOOTSTRAP_FRACTION * n))
     if len(estimates) < needed:
-        return None, (f"only {len(estimates)} of {n} bootstrap refits converged "
-                      f"(at least {needed} needed)")
+        return None, (
+            f"only {len(estimates)} of {n} bootstrap refits converged (at least {needed} needed)"
+        )
     cov = np.atleast_2d(np.cov(np.array(estimates), rowvar=False))
     return cov, f"{len(estimates)} of {n} bootstrap refits converged"
 
@@ -423,8 +458,10 @@ def _check_data(error: str, times: np.ndarray, counts: np.ndarray) -> None:
         )
     if error != "normal" and np.any(counts < 0):
         i = int(np.argmax(counts < 0))
-        raise InputError(f"count {counts[i]:g} at time {times[i]:g} is negative; the {error} "
-                         "observation model needs counts of zero or more")
+        raise InputError(
+            f"count {counts[i]:g} at time {times[i]:g} is negative; the {error} "
+            "observation model needs counts of zero or more"
+        )
     if error in ("poisson", "negative-binomial"):
         off = np.abs(counts - np.round(counts)) > INTEGER_TOLERANCE * np.maximum(1.0, counts)
         if np.any(off):
@@ -512,8 +549,11 @@ def fit_counts(
     _check_data(error, times, counts)
     for name, value, log in zip(names, start, log_scale, strict=True):
         if log and value <= 0:
-            raise InputError(f"start value {value:g} of {name} is not positive; a positive "
-                             "parameter needs a positive starting value", where=name)
+            raise InputError(
+                f"start value {value:g} of {name} is not positive; a positive "
+                "parameter needs a positive starting value",
+                where=name,
+            )
 
     nuisance_names = NUISANCE_NAMES[error]
     problem = _Problem(simulate, counts, error, log_scale, len(nuisance_names))
@@ -532,54 +572,122 @@ def fit_counts(
             sd = np.sqrt(np.diag(cov))
         loglik = -nll
         return FitResult(
-            names=names, values=values, cov=cov, sd=sd, log_scale=tuple(bool(b) for b in log_scale),
-            cov_log=cov_log, error=error,
+            names=names,
+            values=values,
+            cov=cov,
+            sd=sd,
+            log_scale=tuple(bool(b) for b in log_scale),
+            cov_log=cov_log,
+            error=error,
             nuisance={n: float(v) for n, v in zip(nuisance_names, phi[0], strict=True)},
-            loglik=loglik, aic=2 * n_estimated - 2 * loglik, n_counts=counts.size,
-            fitted=mu, residuals=_pearson(error, counts, mu, phi[0]), converged=converged,
-            uncertainty_method=method, message=message,
+            loglik=loglik,
+            aic=2 * n_estimated - 2 * loglik,
+            n_counts=counts.size,
+            fitted=mu,
+            residuals=_pearson(error, counts, mu, phi[0]),
+            converged=converged,
+            uncertainty_method=method,
+            message=message,
         )
 
     starts = _starting_points(problem, z_model, rng)
     if counts.size < n_estimated:
-        return result(starts[0], math.inf, False, "none",
-                      f"{counts.size} counts cannot determine {n_estimated} quantities "
-                      f"({', '.join((*names, *nuisance_names))}); no fit was made")
+        return result(
+            starts[0],
+            math.inf,
+            False,
+            "none",
+            f"{counts.size} counts cannot determine {n_estimated} quantities "
+            f"({', '.join((*names, *nuisance_names))}); no fit was made",
+        )
 
     z, nll, nm_ok, polish_ok = _optimise(problem, starts)
     if not np.isfinite(nll):
-        return result(z, nll, False, "none",
-                      "the likelihood is zero for every parameter set tried near the start "
-                      "values; check the start values and the counts")
-    runaway = [name for name, value, origin, log in
-               zip((*names, *nuisance_names), z, starts[0], np.r_[log_scale, [True] * len(
-                   nuisance_names)], strict=True)
-               if log and abs(value - origin) > RUNAWAY and name != "dispersion"]
+        return result(
+            z,
+            nll,
+            False,
+            "none",
+            "the likelihood is zero for every parameter set tried near the start "
+            "values; check the start values and the counts",
+        )
+    # Every nuisance parameter is on the ln scale; a negative binomial dispersion may grow
+    # without bound (the Poisson limit), which is a legitimate estimate, not a runaway.
+    bounded = np.r_[log_scale, [error != "negative-binomial"] * len(nuisance_names)]
+    moved = np.abs(z - starts[0]) > RUNAWAY
+    every_name = (*names, *nuisance_names)
+    runaway = [n for n, b, m in zip(every_name, bounded, moved, strict=True) if b and m]
     if runaway or not (nm_ok or polish_ok):
-        reason = (f"{', '.join(runaway)} ran off towards 0 or infinity" if runaway
-                  else "the optimiser stopped before meeting its tolerances")
-        return result(z, nll, False, "none",
-                      f"the fit did not converge: {reason}; the counts may not determine "
-                      "these parameters")
+        reason = (
+            f"{', '.join(runaway)} ran off towards 0 or infinity"
+            if runaway
+            else "the optimiser stopped before meeting its tolerances"
+        )
+        return result(
+            z,
+            nll,
+            False,
+            "none",
+            f"the fit did not converge: {reason}; the counts may not determine these parameters",
+        )
 
     if uncertainty == "auto":
         cov_log, detail = _information_covariance(_hessian(problem, z), len(names))
-        if cov_log is not None:
-            return result(z, nll, True, "observed information", "converged; uncertainty from "
-                          f"the observed information ({detail})", cov_log)
+        weak = _poorly_determined(names, log_scale, cov_log)
+        if cov_log is not None and not weak:
+            return result(
+                z,
+                nll,
+                True,
+                "observed information",
+                f"converged; uncertainty from the observed information ({detail})",
+                cov_log,
+            )
+        if weak:
+            detail = (
+                f"the curvature leaves {', '.join(weak)} nearly undetermined (sd of the "
+                f"ln value > {LOG_SD_LIMIT:g})"
+            )
         reason = f"{detail}, so the uncertainty comes from a parametric bootstrap"
     else:
         reason = "uncertainty from a parametric bootstrap, as requested"
     cov_log, detail = _bootstrap(problem, z, n_bootstrap, rng)
     if cov_log is None:
-        return result(z, nll, True, "none", f"converged, but {reason} and {detail}; "
-                      "no uncertainty is available")
-    return result(z, nll, True, "parametric bootstrap", f"converged; {reason} ({detail})",
-                  cov_log)
+        return result(
+            z,
+            nll,
+            True,
+            "none",
+            f"converged, but {reason} and {detail}; no uncertainty is available",
+        )
+    weak = _poorly_determined(names, log_scale, cov_log)
+    caution = (
+        f"; {', '.join(weak)} {'is' if len(weak) == 1 else 'are'} poorly determined by the counts"
+        if weak
+        else ""
+    )
+    return result(
+        z, nll, True, "parametric bootstrap", f"converged; {reason} ({detail}){caution}", cov_log
+    )
 
 
-def _starting_points(problem: _Problem, z_model: np.ndarray,
-                     rng: np.random.Generator) -> list[np.ndarray]:
+def _poorly_determined(
+    names: Sequence[str], log_scale: np.ndarray, cov_log: np.ndarray | None
+) -> list[str]:
+    """Ln-scale parameters whose sd of ln(value) exceeds :data:`LOG_SD_LIMIT`."""
+    if cov_log is None:
+        return []
+    sd = np.sqrt(np.abs(np.diag(cov_log)))
+    return [
+        name
+        for name, log, spread in zip(names, log_scale, sd, strict=True)
+        if log and not spread <= LOG_SD_LIMIT
+    ]
+
+
+def _starting_points(
+    problem: _Problem, z_model: np.ndarray, rng: np.random.Generator
+) -> list[np.ndarray]:
     """The given start and the best of a random cloud around it, screened in one call.
 
     Nuisance parameters start at their moment estimates given each point's model values.
@@ -588,8 +696,9 @@ def _starting_points(problem: _Problem, z_model: np.ndarray,
     linear_width = 0.5 * np.maximum(np.abs(z_model), 1e-8)
     cloud = z_model + spread * np.where(problem.log_scale, SCREEN_WIDTH, linear_width)
     candidates = np.vstack([z_model, cloud])
-    theta, _ = problem.split(np.hstack([candidates, np.zeros((len(candidates),
-                                                               problem.n_nuisance))]))
+    theta, _ = problem.split(
+        np.hstack([candidates, np.zeros((len(candidates), problem.n_nuisance))])
+    )
     mu = problem.model(theta)
     log_phi = _initial_nuisance(problem.error, problem.y, mu)[:, : problem.n_nuisance]
     full = np.hstack([candidates, log_phi])

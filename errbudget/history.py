@@ -74,20 +74,28 @@ def compare(previous: dict | None, current: dict) -> dict | None:
         item = {}
         for key in ("value", "reference", "discretisation", "roundoff", "parameter_sd"):
             old, new = before.get(key), now.get(key)
-            item[key] = {"before": old, "now": new,
-                         "change": None if old is None or new is None else new - old}
+            item[key] = {
+                "before": old,
+                "now": new,
+                "change": None if old is None or new is None else new - old,
+            }
         old_sd, new_sd = before.get("parameter_sd"), now.get("parameter_sd")
         if old_sd and new_sd:
-            item["spread"] = "narrowed" if new_sd < old_sd * 0.99 else (
-                "widened" if new_sd > old_sd * 1.01 else "unchanged")
+            item["spread"] = (
+                "narrowed"
+                if new_sd < old_sd * 0.99
+                else ("widened" if new_sd > old_sd * 1.01 else "unchanged")
+            )
         changes[name] = item
     return {
         "previous_time": previous.get("time"),
         "case_changed": previous.get("case_sha256") != current["case_sha256"],
         "counts_changed": previous.get("counts_sha256") != current["counts_sha256"],
         "verdict": {"before": previous.get("verdict"), "now": current["verdict"]},
-        "recommended_step": {"before": previous.get("recommended_step"),
-                             "now": current["recommended_step"]},
+        "recommended_step": {
+            "before": previous.get("recommended_step"),
+            "now": current["recommended_step"],
+        },
         "quantities": changes,
     }
 

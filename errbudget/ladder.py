@@ -77,8 +77,15 @@ def build(case: Case) -> dict:
         column = table[:, q]
         convergence.append(_safe_gci(column[-3:], steps[-3:], scheme.order))
         case_level.append(_safe_gci(column[:3], steps[:3], scheme.order))
-    return {"steps": steps, "values": table, "settled": done, "capped": capped,
-            "off_grid": off_grid, "convergence": convergence, "case_level": case_level}
+    return {
+        "steps": steps,
+        "values": table,
+        "settled": done,
+        "capped": capped,
+        "off_grid": off_grid,
+        "convergence": convergence,
+        "case_level": case_level,
+    }
 
 
 def _safe_gci(values: np.ndarray, steps: list[float], formal: int):

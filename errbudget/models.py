@@ -139,8 +139,10 @@ def _theta_logistic() -> GrowthModel:
 def _logistic_harvest() -> GrowthModel:
     def equilibria(p: Params) -> list[Equilibrium]:
         carrying = p["K"] * (1 - p["E"] / p["r"])
-        return [Equilibrium("extinction", 0.0 * carrying),
-                Equilibrium("harvested level K(1 - E/r)", np.where(carrying > 0, carrying, np.nan))]
+        return [
+            Equilibrium("extinction", 0.0 * carrying),
+            Equilibrium("harvested level K(1 - E/r)", np.where(carrying > 0, carrying, np.nan)),
+        ]
 
     return GrowthModel(
         "logistic-harvest",
@@ -160,8 +162,10 @@ def _logistic_removal() -> GrowthModel:
         # r N (1 - N/K) = H  =>  N = K/2 (1 +/- sqrt(1 - 4H/(rK))); none when H > rK/4.
         disc = 1 - 4 * p["H"] / (p["r"] * p["K"])
         root = np.sqrt(np.where(disc >= 0, disc, np.nan))
-        return [Equilibrium("lower (unstable) level", p["K"] / 2 * (1 - root)),
-                Equilibrium("upper (stable) level", p["K"] / 2 * (1 + root))]
+        return [
+            Equilibrium("lower (unstable) level", p["K"] / 2 * (1 - root)),
+            Equilibrium("upper (stable) level", p["K"] / 2 * (1 + root)),
+        ]
 
     return GrowthModel(
         "logistic-removal",
@@ -185,9 +189,11 @@ def _allee() -> GrowthModel:
         {"r": RATE, "K": POPULATION, "A": POPULATION},
         lambda t, n, p: p["r"] * n * (1 - n / p["K"]) * (n / p["A"] - 1),
         d_dn,
-        lambda p: [Equilibrium("extinction", 0.0 * p["K"]),
-                   Equilibrium("Allee threshold A", p["A"] * _ones(p)),
-                   Equilibrium("K", p["K"] * _ones(p))],
+        lambda p: [
+            Equilibrium("extinction", 0.0 * p["K"]),
+            Equilibrium("Allee threshold A", p["A"] * _ones(p)),
+            Equilibrium("K", p["K"] * _ones(p)),
+        ],
     )
 
 
@@ -207,8 +213,7 @@ def built_in(form: str, where: str = "model.form") -> GrowthModel:
     """The built-in law called ``form``."""
     if form not in BUILT_IN:
         raise InputError(
-            f"unknown form {form!r}{did_you_mean(str(form), FORMS)}; accepted: "
-            + ", ".join(FORMS),
+            f"unknown form {form!r}{did_you_mean(str(form), FORMS)}; accepted: " + ", ".join(FORMS),
             where=where,
         )
     return BUILT_IN[form]()

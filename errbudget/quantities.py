@@ -43,8 +43,10 @@ class Trajectory:
         """f at the grid points ``index`` (one per member) [population / time]."""
         members = np.arange(self.states.shape[1])
         with np.errstate(all="ignore"):
-            return np.asarray(self.rate(index * self.step, self.states[index, members],
-                                        self.params), dtype=self.states.dtype)
+            return np.asarray(
+                self.rate(index * self.step, self.states[index, members], self.params),
+                dtype=self.states.dtype,
+            )
 
     def hermite(self, index: np.ndarray, s: np.ndarray) -> np.ndarray:
         """Interpolant at t = (index + s) h, 0 <= s <= 1, one (index, s) per member."""
@@ -54,8 +56,12 @@ class Trajectory:
         f0, f1 = self.slope(index), self.slope(index + 1)
         h = self.step
         s2, s3 = s * s, s * s * s
-        return ((2 * s3 - 3 * s2 + 1) * y0 + (s3 - 2 * s2 + s) * h * f0
-                + (-2 * s3 + 3 * s2) * y1 + (s3 - s2) * h * f1)
+        return (
+            (2 * s3 - 3 * s2 + 1) * y0
+            + (s3 - 2 * s2 + s) * h * f0
+            + (-2 * s3 + 3 * s2) * y1
+            + (s3 - s2) * h * f1
+        )
 
     def value_at(self, time: float) -> tuple[np.ndarray, bool]:
         """States at ``time``; the flag is True when ``time`` is off the grid."""
@@ -86,7 +92,7 @@ def time_to(traj: Trajectory, level: float) -> np.ndarray:
     with np.errstate(invalid="ignore"):
         crossed = np.sign(states[1:] - level) != side[None, :]
     crossed &= np.isfinite(states[1:])
-    crossed[traj.last_index + 1:] = False
+    crossed[traj.last_index + 1 :] = False
     found = crossed.any(axis=0)
     index = np.where(found, crossed.argmax(axis=0), 0)
     low = np.zeros(states.shape[1])

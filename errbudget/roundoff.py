@@ -34,8 +34,7 @@ def measure(case: Case, step: float) -> dict:
     """
     params = nominal_params(case)
     runs = {}
-    for name, dtype in (("float32", np.float32), ("float64", np.float64),
-                        ("wide", np.longdouble)):
+    for name, dtype in (("float32", np.float32), ("float64", np.float64), ("wide", np.longdouble)):
         traj = solve(case, params, step, dtype=dtype)
         values, _ = quantity_values(case, traj)
         runs[name] = values[:, 0]
@@ -44,9 +43,12 @@ def measure(case: Case, step: float) -> dict:
     wide, wider = wide_type()
     n_steps = n_steps_for(case.horizon, step)
     with np.errstate(invalid="ignore"):
-        measured = np.abs(runs["float64"] - runs["wide"]) if wider else np.abs(
-            runs["float64"] - runs["float32"]) * (UNIT_ROUNDOFF[np.float64]
-                                                  / UNIT_ROUNDOFF[np.float32])
+        measured = (
+            np.abs(runs["float64"] - runs["wide"])
+            if wider
+            else np.abs(runs["float64"] - runs["float32"])
+            * (UNIT_ROUNDOFF[np.float64] / UNIT_ROUNDOFF[np.float32])
+        )
     bound = []
     for spec, value in zip(case.quantities, runs["float64"], strict=True):
         # A time read off a crossing inherits the state's error divided by the slope; bound it
@@ -60,6 +62,7 @@ def measure(case: Case, step: float) -> dict:
         "wide_is_wider": bool(wider),
         "wide_digits": int(np.finfo(wide).precision),
         "n_steps": n_steps,
-        "method": "binary64 against long double" if wider else
-                  "binary32 difference scaled by the ratio of unit roundoffs",
+        "method": "binary64 against long double"
+        if wider
+        else "binary32 difference scaled by the ratio of unit roundoffs",
     }

@@ -56,8 +56,14 @@ def estimate_memory_mb(case: Case, rows: int, finest_step: float) -> float:
     return rows * stored * BYTES_PER_VALUE * WORK_COPIES / 1e6
 
 
-def run_case(case: Case, *, samples: int | None = None, seed: int | None = None,
-             progress: Callable[[str], None] | None = None, fit=None) -> Budget:
+def run_case(
+    case: Case,
+    *,
+    samples: int | None = None,
+    seed: int | None = None,
+    progress: Callable[[str], None] | None = None,
+    fit=None,
+) -> Budget:
     """Compute the error budget of a case.
 
     Parameters
@@ -99,10 +105,16 @@ def run_case(case: Case, *, samples: int | None = None, seed: int | None = None,
     steps_info = ladder.build(case)
     steps = steps_info["steps"]
     if steps_info["capped"]:
-        flags.append({"code": "ladder-capped", "message": (
-            f"the observed order did not settle at the formal order {scheme.order} within "
-            f"{len(steps)} levels (finest step {steps[-1]:g} {case.time_unit}); the "
-            "discretisation estimates are less certain")})
+        flags.append(
+            {
+                "code": "ladder-capped",
+                "message": (
+                    f"the observed order did not settle at the formal order {scheme.order} within "
+                    f"{len(steps)} levels (finest step {steps[-1]:g} {case.time_unit}); the "
+                    "discretisation estimates are less certain"
+                ),
+            }
+        )
 
     if independent or joint is not None:
         design = sample_design(independent, joint, n_base, seed)
@@ -117,7 +129,9 @@ def run_case(case: Case, *, samples: int | None = None, seed: int | None = None,
             f"this run would need about {need:.0f} MB ({rows} parameter sets, finest step "
             f"{steps[-1]:g} {case.time_unit}), above the limit of {limit:.0f} MB; lower "
             "[budget] samples, shorten the horizon, or raise [budget] memory_limit",
-            str(case.path), "budget.samples")
+            str(case.path),
+            "budget.samples",
+        )
     params = ensemble_params(case, sampled)
 
     say(f"ensemble at the case's step ({rows} parameter sets)")
@@ -154,15 +168,32 @@ def run_case(case: Case, *, samples: int | None = None, seed: int | None = None,
     limits = stability.step_limits(case.model, scheme, law)
 
     say("searching for the coarsest adequate step")
-    recommendation = recommend(case, params, reference, finest, stride_of=steps[-1],
-                               spreads=spreads, limits=limits)
+    recommendation = recommend(
+        case, params, reference, finest, stride_of=steps[-1], spreads=spreads, limits=limits
+    )
     series = _series(case, coarse, finest, stride, iid, errors)
     elapsed = time.perf_counter() - started
-    data = assemble(case, scheme=scheme, steps_info=steps_info, case_values=case_values,
-                    reference=reference, errors=errors, spreads=spreads, indices=indices,
-                    drivers=drivers, rounding=rounding, limits=limits, flags=flags,
-                    recommendation=recommendation, fit=fit, design_rows=rows, n_base=n_base,
-                    seed=seed, elapsed=elapsed, series=series)
+    data = assemble(
+        case,
+        scheme=scheme,
+        steps_info=steps_info,
+        case_values=case_values,
+        reference=reference,
+        errors=errors,
+        spreads=spreads,
+        indices=indices,
+        drivers=drivers,
+        rounding=rounding,
+        limits=limits,
+        flags=flags,
+        recommendation=recommendation,
+        fit=fit,
+        design_rows=rows,
+        n_base=n_base,
+        seed=seed,
+        elapsed=elapsed,
+        series=series,
+    )
     return Budget(data, series)
 
 
@@ -225,6 +256,7 @@ def _series(case: Case, coarse, finest, stride: int, iid: np.ndarray, errors) ->
         "worst_error": float(gap_high[worst]) if np.isfinite(gap_high[worst]) else None,
         "nominal_coarse": solve(case, nominal_params(case), case.step).states[: last + 1, 0],
         "nominal_fine": solve(case, nominal_params(case), finest.step).states[
-            : finest.last_index + 1, 0],
+            : finest.last_index + 1, 0
+        ],
         "errors": errors,
     }

@@ -81,16 +81,27 @@ SCHEMES: dict[str, Scheme] = {
     scheme.name: scheme
     for scheme in (
         Scheme("euler", "explicit Euler", 1, ((0.0,),), (1.0,), (0.0,)),
-        Scheme("heun", "Heun (explicit trapezoidal)", 2, ((0.0, 0.0), (1.0, 0.0)), (0.5, 0.5),
-               (0.0, 1.0)),
-        Scheme("midpoint", "explicit midpoint", 2, ((0.0, 0.0), (0.5, 0.0)), (0.0, 1.0),
-               (0.0, 0.5)),
+        Scheme(
+            "heun",
+            "Heun (explicit trapezoidal)",
+            2,
+            ((0.0, 0.0), (1.0, 0.0)),
+            (0.5, 0.5),
+            (0.0, 1.0),
+        ),
+        Scheme(
+            "midpoint", "explicit midpoint", 2, ((0.0, 0.0), (0.5, 0.0)), (0.0, 1.0), (0.0, 0.5)
+        ),
         Scheme(
             "rk4",
             "classical Runge-Kutta",
             4,
-            ((0.0, 0.0, 0.0, 0.0), (0.5, 0.0, 0.0, 0.0), (0.0, 0.5, 0.0, 0.0),
-             (0.0, 0.0, 1.0, 0.0)),
+            (
+                (0.0, 0.0, 0.0, 0.0),
+                (0.5, 0.0, 0.0, 0.0),
+                (0.0, 0.5, 0.0, 0.0),
+                (0.0, 0.0, 1.0, 0.0),
+            ),
             (1 / 6, 1 / 3, 1 / 3, 1 / 6),
             (0.0, 0.5, 0.5, 1.0),
         ),

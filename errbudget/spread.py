@@ -331,7 +331,9 @@ def _analyze(problem: dict, y: np.ndarray, conf_level: float, n_resamples: int, 
         raw = (res["S1"][i], res["S1_conf"][i], res["ST"][i], res["ST_conf"][i])
         if not all(math.isfinite(v) for v in raw):
             replaced.append(g)
-        indices[g] = {k: float(v) if math.isfinite(v) else 0.0 for k, v in zip(_INDEX_KEYS, raw)}
+        indices[g] = {
+            k: float(v) if math.isfinite(v) else 0.0 for k, v in zip(_INDEX_KEYS, raw, strict=True)
+        }
     return indices, replaced
 
 

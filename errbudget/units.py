@@ -15,6 +15,7 @@ from errbudget.errors import InputError
 ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
 Quantity = ureg.Quantity
 
+COUNT_DIMENSIONS: set[str] = set()  # dimensions created here for population names
 _NAME = re.compile(r"[A-Za-z_][A-Za-z_0-9]*")
 _SAFE_UNIT_TEXT = re.compile(r"^[A-Za-z_0-9\s\*/\^\.\(\)\-\+]*$")
 
@@ -30,14 +31,42 @@ def ensure_count_units(unit_text: str) -> None:
             ureg.parse_units(name)
         except pint.errors.UndefinedUnitError:
             ureg.define(f"{name} = [{name}]")
+            COUNT_DIMENSIONS.add(f"[{name}]")
         except (pint.errors.PintError, ValueError, TypeError, AttributeError):
             raise InputError(f'"{name}" cannot be used as a unit name') from None
+
+
+def check_population_unit(unit: pint.Unit, text: str, where: str) -> None:
+    """A population is a count, a mass (biomass), or either per area or per volume.
+
+    Catches names that pint already knows as something else: "perch" is a length (a rod).
+    """
+    dims = dict(ureg.Quantity(1, unit).dimensionality)
+    counts = [d for d in dims if d in COUNT_DIMENSIONS]
+    mass = dims.get("[mass]", 0)
+    length = dims.get("[length]", 0)
+    others = [d for d in dims if d not in COUNT_DIMENSIONS and d not in ("[mass]", "[length]")]
+    ok = (
+        not others
+        and length in (0, -2, -3)
+        and (
+            (len(counts) == 1 and dims[counts[0]] == 1 and mass == 0) or (not counts and mass == 1)
+        )
+    )
+    if not ok:
+        known = ", ".join(f"{d}^{e:g}" for d, e in dims.items()) or "a pure number"
+        raise InputError(
+            f'"{text}" resolves to {known}, not a population: use a count name of your own '
+            '(e.g. "fish", "plant", "perch_fish" -- some animal names are old units of '
+            'length), a mass such as "tonne", or either per area or volume ("mussel / m**2")',
+            where=where,
+        )
 
 
 def parse_unit(text: str, where: str) -> pint.Unit:
     """Parse a unit expression such as ``"mussel / m**2"``."""
     if not isinstance(text, str) or not text.strip():
-        raise InputError("expected a unit name such as \"fish\" or \"plant / m**2\"", where=where)
+        raise InputError('expected a unit name such as "fish" or "plant / m**2"', where=where)
     if not _SAFE_UNIT_TEXT.match(text):
         raise InputError(f'"{text}" is not a unit expression', where=where)
     try:
@@ -49,11 +78,11 @@ def parse_unit(text: str, where: str) -> pint.Unit:
 def parse_quantity(text: object, where: str) -> pint.Quantity:
     """Parse ``"0.06 / day"`` or ``"9000 crayfish"`` (a bare number is dimensionless)."""
     if isinstance(text, bool):
-        raise InputError(f"expected a quantity such as \"7 day\", got {text!r}", where=where)
+        raise InputError(f'expected a quantity such as "7 day", got {text!r}', where=where)
     if isinstance(text, int | float):
         return Quantity(float(text), ureg.dimensionless)
     if not isinstance(text, str) or not text.strip():
-        raise InputError(f"expected a quantity such as \"7 day\", got {text!r}", where=where)
+        raise InputError(f'expected a quantity such as "7 day", got {text!r}', where=where)
     if not _SAFE_UNIT_TEXT.match(text) or len(text) > 200:
         raise InputError(f'"{text}" is not a quantity such as "7 day"', where=where)
     try:
@@ -61,8 +90,17 @@ def parse_quantity(text: object, where: str) -> pint.Quantity:
     except pint.errors.UndefinedUnitError as error:
         unknown = error.unit_names if isinstance(error.unit_names, str) else error.unit_names[0]
         raise InputError(f'"{text}" uses the unknown unit "{unknown}"', where=where) from None
-    except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError,
-            KeyError, IndexError, ZeroDivisionError, OverflowError):
+    except (
+        pint.errors.PintError,
+        ValueError,
+        TypeError,
+        AttributeError,
+        SyntaxError,
+        KeyError,
+        IndexError,
+        ZeroDivisionError,
+        OverflowError,
+    ):
         raise InputError(f'"{text}" is not a quantity such as "7 day"', where=where) from None
     if not isinstance(value, pint.Quantity):
         value = Quantity(float(value), ureg.dimensionless)

@@ -1,0 +1,152 @@
+"""Link the case to its field counts: read them, fit the listed parameters, hand the fit on.
+
+The model is solved for the fit with its closed-form solution where the law has one, and
+otherwise with classical Runge-Kutta on a step refined until halving it changes the values
+at the count times by less than FIT_TOLERANCE (relative), so the solver does not bias the
+estimates.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from errbudget.case import Case
+from errbudget.counts import Counts, read_counts
+from errbudget.ensemble import n_steps_for
+from errbudget.fitting import FitResult, fit_counts
+from errbudget.quantities import Trajectory
+from errbudget.schemes import SCHEMES, integrate
+from errbudget.spread import JointNormal
+
+FIT_TOLERANCE = 1e-8  # relative change at the count times accepted from halving the step
+MAX_HALVINGS = 12
+
+
+@dataclass(frozen=True)
+class CaseFit:
+    """A fit of the case's parameters to its counts, with what is needed downstream."""
+
+    result: FitResult
+    counts: Counts
+    units: dict
+    solver: str
+
+    def to_dict(self) -> dict:
+        data = self.result.to_dict(self.units)
+        data["counts_sha256"] = self.counts.sha256
+        data["counts_file"] = self.counts.path
+        data["times"] = [float(t) for t in self.counts.times]
+        data["counts"] = [float(c) for c in self.counts.counts]
+        data["solver"] = self.solver
+        return data
+
+
+def simulator(case: Case, names: tuple[str, ...], times: np.ndarray):
+    """A vectorised function theta (S, k) -> model values at ``times`` (S, T), and its label."""
+    nominal = case.nominal()
+    end = float(np.max(times))
+
+    def params_for(theta: np.ndarray) -> dict[str, np.ndarray]:
+        theta = np.atleast_2d(theta)
+        size = theta.shape[0]
+        full = {name: np.full(size, value) for name, value in nominal.items()}
+        for column, name in enumerate(names):
+            full[name] = theta[:, column]
+        return full
+
+    if case.model.exact is not None:
+
+        def exact(theta: np.ndarray) -> np.ndarray:
+            p = params_for(theta)
+            law = {k: v[:, None] for k, v in p.items() if k != "N0"}
+            with np.errstate(all="ignore"):
+                return case.model.exact(times[None, :], p["N0"][:, None], law)
+
+        return exact, "closed-form solution"
+
+    rk4 = SCHEMES["rk4"]
+
+    def solve_at(theta: np.ndarray, step: float) -> np.ndarray:
+        p = params_for(theta)
+        law = {k: v for k, v in p.items() if k != "N0"}
+        states = integrate(case.model.rate, p["N0"], law, step, n_steps_for(end, step), rk4)
+        traj = Trajectory(states, step, end, case.model.rate, law)
+        return np.stack([traj.value_at(t)[0] for t in times], axis=1)
+
+    step = min(case.step, end / 8)
+    start = np.array([[nominal[n] for n in names]])
+    for _ in range(MAX_HALVINGS):
+        with np.errstate(all="ignore"):
+            coarse, fine = solve_at(start, step), solve_at(start, step / 2)
+            change = np.nanmax(np.abs(fine - coarse) / np.maximum(np.abs(fine), 1e-300))
+        if change < FIT_TOLERANCE:
+            break
+        step /= 2
+
+    def numeric(theta: np.ndarray) -> np.ndarray:
+        with np.errstate(all="ignore"):
+            return solve_at(theta, step)
+
+    return numeric, f"classical Runge-Kutta, step {step:g} {case.time_unit}"
+
+
+def fit_from_counts(case: Case) -> CaseFit:
+    """Read the case's counts and fit its ``[counts] fit`` parameters by maximum likelihood."""
+    spec = case.counts
+    counts = read_counts(
+        spec.path,
+        time_column=spec.time_column,
+        count_column=spec.count_column,
+        time_factor=spec.time_factor,
+        days_to_internal=spec.days_to_internal,
+        start=spec.start,
+        where="counts",
+    )
+    names = spec.fit
+    simulate, solver = simulator(case, names, counts.times)
+    start = np.array([case.parameters[n].nominal for n in names])
+    positive = [case.parameters[n].nominal > 0 for n in names]
+    result = fit_counts(
+        simulate,
+        names,
+        start,
+        counts.times,
+        counts.counts,
+        spec.error,
+        positive=positive,
+        seed=case.budget.seed,
+    )
+    units = {name: p.unit for name, p in case.parameters.items()}
+    units.update(
+        {
+            "dispersion": case.population_unit,
+            "sigma": case.population_unit if spec.error == "normal" else "1",
+        }
+    )
+    return CaseFit(result, counts, units, solver)
+
+
+def joint_from_fit(fit: CaseFit, flags: list[dict]) -> JointNormal | None:
+    """The fitted parameters' joint distribution, or None (prior spread kept, flagged)."""
+    result = fit.result
+    if not result.converged or result.cov_log is None:
+        flags.append(
+            {
+                "code": "fit-failed",
+                "message": (
+                    f"the fit to the counts did not give usable estimates ({result.message}); the "
+                    "budget uses the case's prior spread for " + ", ".join(result.names)
+                ),
+            }
+        )
+        return None
+    mean = np.where(result.log_scale, np.log(np.abs(result.values)), result.values)
+    return JointNormal(
+        names=tuple(result.names),
+        mean=mean,
+        cov=np.array(result.cov_log),
+        group="fitted",
+        log_scale=tuple(result.log_scale),
+    )
