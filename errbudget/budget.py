@@ -232,6 +232,7 @@ def assemble(
                         abs(rounding["float32"][q] - rounding["float64"][q])
                     ),
                     "method": rounding["method"],
+                    **_curve_block(rounding, q, scheme.order, unit, case.time_unit),
                 },
                 "parameter": {
                     "sd": sd,
@@ -376,6 +377,28 @@ def _cost(case: Case, recommendation: dict) -> dict | None:
         if rec is None
         else seconds_per_run(rec) * members,
         "note": "one run = one parameter set over the horizon, measured in this run's step search",
+    }
+
+
+def _curve_block(rounding, q: int, order: int, unit: str, time_unit: str) -> dict:
+    """The fitted binary64 curve E(h) = C h^p + D u / h of quantity ``q``, with units."""
+    fitted = rounding.get("curve")
+    if fitted is None:
+        return {"curve": None, "statement": None}
+    part = fitted["quantities"][q]
+    return {
+        "curve": {
+            "C": {"value": _number(part["C"]), "unit": f"{unit} / {time_unit}^{order}"},
+            "D": {"value": _number(part["D"]), "unit": f"{unit} * {time_unit}"},
+            "D_is_bound": part["D_is_bound"],
+            "p": order,
+            "unit_roundoff": fitted["unit_roundoff"],
+            "optimum_step": {"value": _number(part["optimum_step"]), "unit": time_unit},
+            "crossover_step": {"value": _number(part["crossover_step"]), "unit": time_unit},
+            "steps": {"values": fitted["steps"], "unit": time_unit},
+            "errors": {"values": part["errors"], "unit": unit},
+        },
+        "statement": part["statement"],
     }
 
 

@@ -136,7 +136,7 @@ def _run_one(case, args) -> None:
     data["run"]["timestamp"] = timestamp
     folder = args.out / case.path.stem
     with history.locked(folder):
-        line = history.entry(data, timestamp)
+        line = history.entry(data, timestamp, series=budget.series)
         data["since_last"] = history.compare(history.last_entry(folder), line)
         html = render_html(data, budget.series, case.text)
         write_atomic(folder / "budget.json", dumps(data))

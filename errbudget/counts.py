@@ -117,12 +117,19 @@ def read_counts(
     time_index = _column_index(header, time_column, source)
     count_index = _column_index(header, count_column, source)
 
+    filled = [(line, row) for line, row in rows if any(row)]  # blank lines carry no count
+    dated = bool(filled) and _ISO_DATE.match(filled[0][1][time_index]) is not None
     lines: list[int] = []
     time_cells: list[str] = []
+    moments: list = []  # datetimes, or elapsed times in the file's unit
     values: list[float] = []
-    for line, row in rows:
-        if all(cell == "" for cell in row):
-            continue  # a blank line carries no count
+    for line, row in filled:  # row by row, so the first bad cell in the file is reported
+        time_where = f'line {line}, column "{time_column}"'
+        if dated:
+            moments.append(_parse_date(row[time_index], source, time_where))
+        else:
+            expected = "a number (nor an ISO date, YYYY-MM-DD)"
+            moments.append(_number(row[time_index], source, time_where, expected))
         count_where = f'line {line}, column "{count_column}"'
         value = _number(row[count_index], source, count_where)
         if value < 0:
@@ -135,9 +142,15 @@ def read_counts(
         time_cells.append(row[time_index])
         values.append(value)
 
-    times = _elapsed_times(
-        time_cells, lines, time_column, time_factor, days_to_internal, start, source, where
-    )
+    places = [f'line {line}, column "{time_column}"' for line in lines]
+    if dated:
+        times = _days_since_start(
+            moments, time_cells, places, days_to_internal, start, source, where
+        )
+    else:
+        times = _scaled_elapsed(
+            moments, time_cells, places, time_factor, start, source, time_column, where
+        )
     _check_order(times, time_cells, lines, source, time_column)
     if len(values) < MIN_ROWS:
         raise InputError(
@@ -294,44 +307,48 @@ def _parse_date(cell: str, source: str, where: str) -> datetime:
     return moment
 
 
-def _elapsed_times(
+def _scaled_elapsed(
+    elapsed: list[float],
     cells: list[str],
-    lines: list[int],
-    column: str,
+    places: list[str],
     time_factor: float,
+    start: str | None,
+    source: str,
+    column: str,
+    where: str,
+) -> list[float]:
+    """Elapsed times in the file's unit times ``time_factor`` [internal unit]."""
+    if start is not None:
+        raise InputError(
+            f'start is only used when the time column holds dates; column "{column}" '
+            "holds elapsed times, which already count from the start",
+            where=f"[{where}] start",
+        )
+    for value, cell, place in zip(elapsed, cells, places, strict=True):
+        if value < 0:
+            raise InputError(
+                f"elapsed time {cell} is before the start (times must be zero or more)",
+                source=source,
+                where=place,
+            )
+    return [value * time_factor for value in elapsed]
+
+
+def _days_since_start(
+    moments: list[datetime],
+    cells: list[str],
+    places: list[str],
     days_to_internal: float | None,
     start: str | None,
     source: str,
     where: str,
 ) -> list[float]:
-    """Elapsed times [internal unit] from elapsed-time cells or from ISO dates."""
-    places = [f'line {line}, column "{column}"' for line in lines]
-    dated = bool(cells) and _ISO_DATE.match(cells[0]) is not None
-    if not dated:
-        if start is not None:
-            raise InputError(
-                f'start is only used when the time column holds dates; column "{column}" '
-                "holds elapsed times, which already count from the start",
-                where=f"[{where}] start",
-            )
-        times = []
-        for cell, place in zip(cells, places, strict=True):
-            value = _number(cell, source, place, "a number (nor an ISO date, YYYY-MM-DD)")
-            if value < 0:
-                raise InputError(
-                    f"elapsed time {cell} is before the start (times must be zero or more)",
-                    source=source,
-                    where=place,
-                )
-            times.append(value * time_factor)
-        return times
-
+    """Time since ``start`` (default: the first date) [internal unit]."""
     if days_to_internal is None or not (math.isfinite(days_to_internal) and days_to_internal > 0):
         raise ValueError("days_to_internal (a positive float) is needed when the times are dates")
-    moments = [_parse_date(cell, source, place) for cell, place in zip(cells, places, strict=True)]
     origin = moments[0] if start is None else _parse_date(str(start), None, f"[{where}] start")
     times = []
-    for cell, place, moment in zip(cells, places, moments, strict=True):
+    for moment, cell, place in zip(moments, cells, places, strict=True):
         days = (moment - origin).total_seconds() / SECONDS_PER_DAY
         if days < 0:
             raise InputError(

@@ -7,9 +7,13 @@ from collections.abc import Mapping
 
 import numpy as np
 
+from errbudget import engine
 from errbudget.case import Case
 from errbudget.quantities import Trajectory, evaluate
 from errbudget.schemes import Scheme, get_scheme, integrate
+
+USE_COMPILED = True  # False forces the numpy reference path (tests, benchmarks)
+_COMPILED: dict[int, tuple] = {}  # id(model) -> (model, (kernel, spec) or None)
 
 
 def n_steps_for(horizon: float, step: float) -> int:
@@ -40,16 +44,34 @@ def solve(
     """
     scheme = scheme or get_scheme(case.scheme)
     law = {name: np.asarray(value, dtype=dtype) for name, value in params.items() if name != "N0"}
-    states = integrate(
-        case.model.rate,
-        params["N0"],
-        law,
-        step,
-        n_steps_for(case.horizon, step),
-        scheme,
-        dtype=dtype,
-    )
+    n_steps = n_steps_for(case.horizon, step)
+    compiled = _compiled(case.model) if np.dtype(dtype) == np.float64 else None
+    if compiled is not None:
+        kernel, spec = compiled
+        states = engine.integrate_compiled(kernel, spec, params["N0"], law, step, n_steps, scheme)
+    else:  # the numpy reference: float32 / long double, or numba unavailable
+        states = integrate(case.model.rate, params["N0"], law, step, n_steps, scheme, dtype=dtype)
     return Trajectory(states, step, case.horizon, case.model.rate, law)
+
+
+def _compiled(model) -> tuple[object, engine.RateSpec] | None:
+    """The compiled kernel and rate description of ``model``, or None (use numpy).
+
+    Remembered on the model object: the tree walk and the kernel lookup happen once per
+    law per process. Any failure to generate or compile falls back to the numpy path.
+    """
+    if not USE_COMPILED:
+        return None
+    found = _COMPILED.get(id(model))
+    if found is None or found[0] is not model:
+        try:
+            spec = engine.rate_spec(model)
+            kernel = engine.kernel_for(spec) if spec is not None else None
+        except Exception:  # noqa: BLE001 - e.g. a read-only cache folder: numpy still works
+            kernel = None
+        found = (model, (kernel, spec) if kernel is not None else None)
+        _COMPILED[id(model)] = found
+    return found[1]
 
 
 def quantity_values(case: Case, traj: Trajectory) -> tuple[np.ndarray, list[bool]]:

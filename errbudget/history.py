@@ -8,16 +8,28 @@ from __future__ import annotations
 
 import fcntl
 import json
+import math
 import os
 from contextlib import contextmanager
 from pathlib import Path
 
+import numpy as np
+
 HISTORY_NAME = "history.jsonl"
 ENTRY_SCHEMA = "errbudget.history/1"
+FORECAST_POINTS = 50  # samples of the forecast kept per run: enough to interpolate a curve
+Z_95 = 1.6448536269514722  # 95th percentile of the standard normal: p95 - p5 = 2 z sd
+SD_TOLERANCE = 0.01  # relative change of an sd below which it counts as unchanged
 
 
-def entry(budget: dict, timestamp: str) -> dict:
-    """The history line of a run, taken from its budget.json."""
+def entry(budget: dict, timestamp: str, series: dict | None = None) -> dict:
+    """The history line of a run, taken from its budget.json (and the run's ``series``).
+
+    Besides the budget's components it keeps what a later run needs to check this run's
+    forecast against counts that arrive after it: the count times and counts, the
+    observation model with its nuisance parameter, and a compact forecast (see
+    :func:`forecast_from_series`).
+    """
     fit = budget.get("fit") or {}
     return {
         "schema": ENTRY_SCHEMA,
@@ -41,7 +53,57 @@ def entry(budget: dict, timestamp: str) -> dict:
             }
             for q in budget["quantities"]
         },
+        "unit": _population_unit(budget),
+        "time_unit": budget["simulation"]["horizon"]["unit"],
+        "error": fit.get("error"),
+        "nuisance": {k: v.get("value") for k, v in (fit.get("nuisance") or {}).items()},
+        "count_times": fit.get("times"),
+        "counts": fit.get("counts"),
+        "forecast": forecast_from_series(series) if series else None,
     }
+
+
+def _population_unit(budget: dict) -> str | None:
+    validation = budget.get("validation") or {}
+    if validation.get("unit"):
+        return validation["unit"]
+    for q in budget["quantities"]:
+        if q["unit"] != budget["simulation"]["horizon"]["unit"]:
+            return q["unit"]
+    return None
+
+
+def forecast_from_series(series: dict, points: int = FORECAST_POINTS) -> dict | None:
+    """The run's ensemble forecast on about ``points`` times over the horizon.
+
+    ``series["band"]`` holds the 5th, 50th and 95th percentiles of the accurate ensemble
+    solutions on the case's grid ``series["times"]``. The forecast keeps the median as the
+    value and, as a normal approximation, sd = (p95 - p5) / (2 z_0.95) = (p95 - p5) / 3.29
+    (z_0.95 = 1.645, the 95th percentile of the standard normal). Non-finite values become
+    None.
+
+    Returns
+    -------
+    dict or None
+        {"times": [...], "values": [...], "sd": [...], "sd_method": str} [case time unit,
+        population unit].
+    """
+    times = np.asarray(series.get("times", []), dtype=float)
+    band = np.asarray(series.get("band", []), dtype=float)
+    if times.size == 0 or band.ndim != 2 or band.shape[0] < 3:
+        return None
+    pick = np.unique(np.linspace(0, times.size - 1, min(points, times.size)).round().astype(int))
+    low, median, high = band[0, pick], band[1, pick], band[-1, pick]
+    return {
+        "times": _plain(times[pick]),
+        "values": _plain(median),
+        "sd": _plain((high - low) / (2 * Z_95)),
+        "sd_method": "ensemble median; sd = (p95 - p5) / 3.29 (normal approximation)",
+    }
+
+
+def _plain(values) -> list:
+    return [float(x) if math.isfinite(x) else None for x in np.asarray(values, dtype=float)]
 
 
 def last_entry(folder: Path) -> dict | None:
@@ -81,11 +143,7 @@ def compare(previous: dict | None, current: dict) -> dict | None:
             }
         old_sd, new_sd = before.get("parameter_sd"), now.get("parameter_sd")
         if old_sd and new_sd:
-            item["spread"] = (
-                "narrowed"
-                if new_sd < old_sd * 0.99
-                else ("widened" if new_sd > old_sd * 1.01 else "unchanged")
-            )
+            item["spread"] = _change(old_sd, new_sd)
         changes[name] = item
     return {
         "previous_time": previous.get("time"),
@@ -97,6 +155,95 @@ def compare(previous: dict | None, current: dict) -> dict | None:
             "now": current["recommended_step"],
         },
         "quantities": changes,
+        **_parameter_changes(previous.get("fitted") or {}, current.get("fitted") or {}),
+        "verdict_changed": previous.get("verdict") != current["verdict"],
+        "recommended_step_changed": previous.get("recommended_step") != current["recommended_step"],
+        "new_counts": check_forecast(previous, current),
+    }
+
+
+def _change(before, now) -> str | None:
+    """The change of an sd: narrowed, widened or unchanged (within SD_TOLERANCE), or None."""
+    if before is None or now is None:
+        return None
+    if now < before * (1 - SD_TOLERANCE):
+        return "narrowed"
+    if now > before * (1 + SD_TOLERANCE):
+        return "widened"
+    return "unchanged"
+
+
+def _parameter_changes(before: dict, now: dict) -> dict:
+    """Per fitted parameter the sd before and now, and the names whose sd narrowed."""
+    parameters = {}
+    for name, item in now.items():
+        old_sd = (before.get(name) or {}).get("sd")
+        parameters[name] = {
+            "sd_before": old_sd,
+            "sd_now": item.get("sd"),
+            "change": _change(old_sd, item.get("sd")),
+        }
+    narrowed = [name for name, item in parameters.items() if item["change"] == "narrowed"]
+    return {"parameters": parameters, "narrowed": narrowed}
+
+
+def check_forecast(previous: dict, current: dict) -> dict | None:
+    """The previous run's forecast against the counts that came after its last count.
+
+    For each count D_j of the current run later than the previous run's last count time (and
+    within the previous forecast's time range), the previous forecast F_j (ensemble median,
+    linearly interpolated between the stored times) gives E_j = F_j - D_j, set against
+    u_val = sqrt(sd_F^2 + u_D^2) following the V&V 20 comparison approach (ASME V&V
+    20-2009), with sd_F the forecast's sd and u_D the count's sd about F_j under the
+    previous run's observation model. There is no u_num term: the forecast is made of
+    accurate solutions. ``exceed`` marks |E| > 2 u_val (common practice, no source).
+
+    Returns
+    -------
+    dict or None
+        None when the previous run kept no forecast or no counts; otherwise times, counts,
+        forecast, forecast_sd, u_D, E, u_val, exceed, n_exceed, unit, time_unit, and
+        ``beyond`` (later counts outside the forecast range, not compared).
+    """
+    from errbudget.validation import COVERAGE, observation_sd
+
+    forecast, old_times = previous.get("forecast"), previous.get("count_times")
+    times, counts = current.get("count_times"), current.get("counts")
+    if not forecast or old_times is None or times is None or counts is None:
+        return None
+    last = max(old_times) if old_times else -math.inf
+    f_times = np.asarray(forecast["times"], dtype=float)
+    f_values = np.asarray([np.nan if v is None else v for v in forecast["values"]], float)
+    f_sd = np.asarray([np.nan if v is None else v for v in forecast["sd"]], float)
+    times, counts = np.asarray(times, dtype=float), np.asarray(counts, dtype=float)
+    later = times > last
+    inside = later & (times <= f_times[-1] * (1 + 1e-12))
+    t, d = times[inside], counts[inside]
+    value = np.interp(t, f_times, f_values)
+    sd = np.interp(t, f_times, f_sd)
+    error_model = previous.get("error") or current.get("error")
+    nuisance = previous.get("nuisance") or current.get("nuisance") or {}
+    try:
+        u_data = observation_sd(error_model, value, nuisance)
+    except ValueError:
+        u_data = np.full(value.shape, np.nan)
+    error = value - d
+    u_val = np.sqrt(sd**2 + u_data**2)
+    with np.errstate(invalid="ignore"):
+        exceed = np.abs(error) > COVERAGE * u_val
+    return {
+        "times": _plain(t),
+        "counts": _plain(d),
+        "forecast": _plain(value),
+        "forecast_sd": _plain(sd),
+        "u_D": _plain(u_data),
+        "E": _plain(error),
+        "u_val": _plain(u_val),
+        "exceed": [bool(x) for x in exceed],
+        "n_exceed": int(exceed.sum()),
+        "unit": previous.get("unit"),
+        "time_unit": previous.get("time_unit"),
+        "beyond": _plain(times[later & ~inside]),
     }
 
 

@@ -208,6 +208,19 @@ BUILT_IN: dict[str, Callable[[], GrowthModel]] = {
 }
 FORMS = (*BUILT_IN, "custom")
 
+# The right-hand side of each built-in law in the custom-expression language, written with
+# the same operations in the same order as its numpy lambda above. The compiled engine
+# (errbudget.engine) builds its kernels from these through the expression whitelist.
+RATE_TEXT: dict[str, str] = {
+    "exponential": "r * N",
+    "logistic": "r * N * (1 - N / K)",
+    "gompertz": "r * N * log(K / N)",
+    "theta-logistic": "r * N * (1 - (N / K) ** theta)",
+    "logistic-harvest": "r * N * (1 - N / K) - E * N",
+    "logistic-removal": "r * N * (1 - N / K) - H",
+    "allee": "r * N * (1 - N / K) * (N / A - 1)",
+}
+
 
 def built_in(form: str, where: str = "model.form") -> GrowthModel:
     """The built-in law called ``form``."""

@@ -115,40 +115,48 @@ def time_to(traj: Trajectory, level: float) -> np.ndarray:
 def extremum(traj: Trajectory, largest: bool) -> np.ndarray:
     """Peak (``largest``) or minimum of the state over [0, horizon] [population].
 
-    The grid extremum is refined on the two intervals beside it at the critical points of
-    the Hermite cubic, so that an interior extremum keeps the scheme's order.
+    Candidates are the grid values, the value at the horizon, and the critical points of the
+    Hermite cubic on every step, so that an interior extremum keeps the scheme's order
+    wherever it falls.
     """
     last = traj.last_index
     states = traj.states[: last + 1].astype(float)
-    sign = 1.0 if largest else -1.0
-    with np.errstate(invalid="ignore"):
-        best_index = np.argmax(sign * np.where(np.isfinite(states), states, -np.inf), axis=0)
-    best = states[best_index, np.arange(states.shape[1])]
-    end_value, _ = traj.value_at(traj.horizon)
-    best = np.where(sign * end_value > sign * best, end_value, best)
-    candidates = [best]
-    for offset in (-1, 0):
-        index = np.clip(best_index + offset, 0, max(last - 1, 0))
-        for s in _critical_points(traj, index):
-            inside = (s > 0) & (s < 1)
-            with np.errstate(all="ignore"):
-                value = traj.hermite(index, np.where(inside, s, 0.0)).astype(float)
-            candidates.append(np.where(inside, value, best))
-    stacked = np.stack(candidates)
-    with np.errstate(invalid="ignore"):
+    members = states.shape[1]
+    with np.errstate(all="ignore"):
+        times = (np.arange(last + 1) * traj.step)[:, None]
+        slopes = np.broadcast_to(
+            np.asarray(traj.rate(times, traj.states[: last + 1], traj.params), dtype=float),
+            states.shape,
+        )
+        end_value, _ = traj.value_at(traj.horizon)
+        candidates = [states, end_value[None, :]]
+        if last >= 1:
+            y0, y1 = states[:-1], states[1:]
+            f0, f1 = slopes[:-1] * traj.step, slopes[1:] * traj.step
+            for s in _critical_points(y0, y1, f0, f1):
+                inside = (s > 0) & (s < 1)
+                s = np.where(inside, s, 0.0)
+                s2, s3 = s * s, s * s * s
+                value = (
+                    (2 * s3 - 3 * s2 + 1) * y0
+                    + (s3 - 2 * s2 + s) * f0
+                    + (-2 * s3 + 3 * s2) * y1
+                    + (s3 - s2) * f1
+                )
+                candidates.append(np.where(inside, value, y0))
+        stacked = np.concatenate(candidates, axis=0)
         result = stacked.max(axis=0) if largest else stacked.min(axis=0)
+    result = np.asarray(result, dtype=float).reshape(members)
     result[~np.isfinite(states).all(axis=0)] = np.nan
     return result
 
 
-def _critical_points(traj: Trajectory, index: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Roots in s of the derivative of the Hermite cubic on interval ``index`` (NaN if none)."""
-    members = np.arange(traj.states.shape[1])
-    y0 = traj.states[index, members].astype(float)
-    y1 = traj.states[index + 1, members].astype(float)
-    f0 = traj.slope(index).astype(float) * traj.step
-    f1 = traj.slope(index + 1).astype(float) * traj.step
-    # p'(s) = a s^2 + b s + c for the Hermite basis above.
+def _critical_points(y0, y1, f0, f1) -> tuple[np.ndarray, np.ndarray]:
+    """Roots in s of the derivative of the Hermite cubic on each step (NaN if none).
+
+    ``f0`` and ``f1`` are the end slopes times the step.
+    """
+    # p'(s) = a s^2 + b s + c for the Hermite basis of Trajectory.hermite.
     a = 6 * y0 + 3 * f0 - 6 * y1 + 3 * f1
     b = -6 * y0 - 4 * f0 + 6 * y1 - 2 * f1
     c = f0

@@ -194,6 +194,12 @@ def run_case(
         elapsed=elapsed,
         series=series,
     )
+    if case.counts is not None and fit is not None:
+        from errbudget.validation import validate_run
+
+        data["validation"] = validate_run(case, fit, finest, iid)
+        if data["validation"]["flag"] is not None:
+            data["flags"].append(data["validation"]["flag"])
     return Budget(data, series)
 
 

@@ -267,3 +267,8 @@ def test_where_label_is_used_in_file_messages(tmp_path):
 def test_header_of_empty_names(tmp_path):
     error = error_of(write(tmp_path, ",\n0,5\n7,8\n14,9\n"))
     assert error.message == "line 1 holds no column names; the first line must name the columns"
+
+
+def test_the_first_bad_cell_in_the_file_is_reported(tmp_path):
+    error = error_of(write(tmp_path, "day,count\n0,5\nsoon,8\n14,12\n21,lots\n"))
+    assert error.where == 'line 3, column "day"'

@@ -17,14 +17,26 @@ PARAMS = {
     "exponential": {"r": np.array([0.3, -0.2, 1.1])},
     "logistic": {"r": np.array([0.5, 1.3, 0.05]), "K": np.array([100.0, 9000.0, 3.0])},
     "gompertz": {"r": np.array([0.5, 1.3, 0.05]), "K": np.array([100.0, 9000.0, 3.0])},
-    "theta-logistic": {"r": np.array([0.5, 1.3, 0.05]), "K": np.array([100.0, 9000.0, 3.0]),
-                       "theta": np.array([0.5, 1.0, 2.5])},
-    "logistic-harvest": {"r": np.array([0.5, 1.3, 0.05]), "K": np.array([100.0, 9000.0, 3.0]),
-                         "E": np.array([0.1, 0.0, 0.08])},
-    "logistic-removal": {"r": np.array([0.5, 1.3, 0.05]), "K": np.array([100.0, 9000.0, 3.0]),
-                         "H": np.array([5.0, 100.0, 0.01])},
-    "allee": {"r": np.array([0.5, 1.3, 0.05]), "K": np.array([100.0, 9000.0, 3.0]),
-              "A": np.array([10.0, 500.0, 1.0])},
+    "theta-logistic": {
+        "r": np.array([0.5, 1.3, 0.05]),
+        "K": np.array([100.0, 9000.0, 3.0]),
+        "theta": np.array([0.5, 1.0, 2.5]),
+    },
+    "logistic-harvest": {
+        "r": np.array([0.5, 1.3, 0.05]),
+        "K": np.array([100.0, 9000.0, 3.0]),
+        "E": np.array([0.1, 0.0, 0.08]),
+    },
+    "logistic-removal": {
+        "r": np.array([0.5, 1.3, 0.05]),
+        "K": np.array([100.0, 9000.0, 3.0]),
+        "H": np.array([5.0, 100.0, 0.01]),
+    },
+    "allee": {
+        "r": np.array([0.5, 1.3, 0.05]),
+        "K": np.array([100.0, 9000.0, 3.0]),
+        "A": np.array([10.0, 500.0, 1.0]),
+    },
 }
 # Sample populations as fractions of a scale (K where the law has one).
 FRACTIONS = np.array([0.05, 0.3, 0.5, 0.8, 1.0, 1.4, 2.2])
@@ -40,7 +52,7 @@ def _law_params(form: str) -> dict:
 
 def test_every_built_in_law_is_covered():
     assert set(PARAMS) == set(BUILT_IN)
-    assert FORMS == (*BUILT_IN, "custom")
+    assert (*BUILT_IN, "custom") == FORMS
     for form in BUILT_IN:
         model = built_in(form)
         assert isinstance(model, GrowthModel)
@@ -63,7 +75,8 @@ def test_d_dn_matches_central_differences(form):
     n = FRACTIONS[:, None] * _scale(params)[None, :]
     delta = FD_STEP * n
     numeric = (model.rate(0.0, n + delta, params) - model.rate(0.0, n - delta, params)) / (
-        2 * delta)
+        2 * delta
+    )
     analytic = model.d_dn(0.0, n, params)
     assert np.shape(analytic) == n.shape
     # Central difference f'(N) = (f(N + d) - f(N - d)) / 2d + O(d^2) (any numerical text).
@@ -107,13 +120,15 @@ def test_known_equilibrium_values():
 def test_missing_equilibria_are_nan():
     # Removal above the maximum sustainable yield rK/4 leaves no equilibrium (Schaefer 1954);
     # harvest faster than r drives the harvested level below zero.
-    removal = {"r": np.array([0.5, 0.5]), "K": np.array([100.0, 100.0]),
-               "H": np.array([20.0, 12.5])}
+    removal = {
+        "r": np.array([0.5, 0.5]),
+        "K": np.array([100.0, 100.0]),
+        "H": np.array([20.0, 12.5]),
+    }
     lower, upper = built_in("logistic-removal").equilibria(removal)
     assert np.isnan(lower.value[0]) and np.isnan(upper.value[0])
     assert lower.value[1] == pytest.approx(50.0) and upper.value[1] == pytest.approx(50.0)
-    harvest = {"r": np.array([0.5, 0.5]), "K": np.array([100.0, 100.0]),
-               "E": np.array([0.7, 0.25])}
+    harvest = {"r": np.array([0.5, 0.5]), "K": np.array([100.0, 100.0]), "E": np.array([0.7, 0.25])}
     levels = {eq.name: eq.value for eq in built_in("logistic-harvest").equilibria(harvest)}
     level = levels["harvested level K(1 - E/r)"]
     assert np.isnan(level[0]) and level[1] == pytest.approx(50.0)
@@ -140,7 +155,8 @@ def test_exact_solution_satisfies_the_law(form):
     np.testing.assert_allclose(model.exact(0.0, n0, params), n0, rtol=1e-14)
     dt = 1e-4
     derivative = (model.exact(times + dt, n0, params) - model.exact(times - dt, n0, params)) / (
-        2 * dt)
+        2 * dt
+    )
     rate = model.rate(times, model.exact(times, n0, params), params)
     np.testing.assert_allclose(derivative, rate, rtol=1e-6, atol=1e-9 * _scale(params).max())
 
@@ -174,8 +190,9 @@ def test_special_cases_reduce_to_the_logistic():
 
 
 def _stable(form: str, params: dict) -> dict[str, np.ndarray]:
-    return {eq.name: np.asarray(eq.value, float) for eq in
-            stable_equilibria(built_in(form), params)}
+    return {
+        eq.name: np.asarray(eq.value, float) for eq in stable_equilibria(built_in(form), params)
+    }
 
 
 def test_stable_equilibrium_of_logistic_is_k():
@@ -204,7 +221,7 @@ def test_stable_equilibrium_of_logistic_removal_is_upper_root():
 
 def test_stable_equilibria_of_allee_are_zero_and_k():
     # Strong Allee effect, 0 < A < K: 0 and K stable, A unstable (Courchamp, Berec &
-    # Gascoigne 2008, ch. 2).
+    # Gascoigne 2008, Allee Effects in Ecology and Conservation; recalled).
     p = PARAMS["allee"]
     stable = _stable("allee", p)
     assert set(stable) == {"extinction", "K"}
@@ -214,8 +231,7 @@ def test_stable_equilibria_of_allee_are_zero_and_k():
 
 def test_stability_per_member_harvest_and_exponential():
     # Harvest: K(1 - E/r) stable while E < r, extinction stable once E > r (Schaefer 1954).
-    harvest = {"r": np.array([0.5, 0.5]), "K": np.array([100.0, 100.0]),
-               "E": np.array([0.1, 0.7])}
+    harvest = {"r": np.array([0.5, 0.5]), "K": np.array([100.0, 100.0]), "E": np.array([0.1, 0.7])}
     stable = _stable("logistic-harvest", harvest)
     np.testing.assert_allclose(stable["harvested level K(1 - E/r)"], [80.0, np.nan])
     np.testing.assert_array_equal(stable["extinction"], [np.nan, 0.0])

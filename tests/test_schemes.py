@@ -55,7 +55,8 @@ def test_tableau_consistency(name):
     a, b, c = _tableau(SCHEMES[name])
     s = SCHEMES[name].stages
     assert a.shape == (s, s) and b.shape == (s,) and c.shape == (s,)
-    # Consistency: sum b = 1 and row sums of A = c (Hairer, Norsett & Wanner 1993, eq. II.1.9)
+    # Consistency: sum b = 1 and row sums of A = c (CHECKS.md; Hairer, Norsett & Wanner
+    # 1993, sec. II.1)
     assert b.sum() == pytest.approx(1.0, abs=1e-15)
     np.testing.assert_allclose(a.sum(axis=1), c, atol=1e-15)
     # Explicit scheme: A strictly lower triangular (same source, sec. II.1)
@@ -66,7 +67,7 @@ def test_tableau_consistency(name):
 def test_order_conditions(name):
     """Butcher's order conditions up to order 4 hold to the formal order and fail just above.
 
-    Conditions recalled from Hairer, Norsett & Wanner 1993, Table II.2.1:
+    Conditions recalled from Hairer, Norsett & Wanner 1993, sec. II.2 (order conditions):
     p=1: sum b = 1; p=2: b.c = 1/2; p=3: b.c^2 = 1/3, b.Ac = 1/6;
     p=4: b.c^3 = 1/4, b.(c*Ac) = 1/8, b.Ac^2 = 1/12, b.AAc = 1/24.
     """
@@ -75,8 +76,12 @@ def test_order_conditions(name):
         1: [(b.sum(), 1.0)],
         2: [(b @ c, 1 / 2)],
         3: [(b @ c**2, 1 / 3), (b @ a @ c, 1 / 6)],
-        4: [(b @ c**3, 1 / 4), (b @ (c * (a @ c)), 1 / 8), (b @ a @ c**2, 1 / 12),
-            (b @ a @ a @ c, 1 / 24)],
+        4: [
+            (b @ c**3, 1 / 4),
+            (b @ (c * (a @ c)), 1 / 8),
+            (b @ a @ c**2, 1 / 12),
+            (b @ a @ a @ c, 1 / 24),
+        ],
     }
     order = SCHEMES[name].order
     for p in range(1, order + 1):
@@ -94,7 +99,7 @@ def test_stability_function(name):
     want = STABILITY_POLYNOMIAL[name]
     # Hairer, Norsett & Wanner 1993, sec. IV.2 (see STABILITY_POLYNOMIAL)
     np.testing.assert_allclose(coefficients[: len(want)], want, atol=1e-15)
-    assert np.all(coefficients[len(want):] == 0.0)
+    assert np.all(coefficients[len(want) :] == 0.0)
     z = np.array([-2.5, -1.0, -0.3, 0.0, 0.7, -1.0 + 1.5j, 0.2 - 2.0j])
     np.testing.assert_allclose(scheme.stability(z), np.polyval(want[::-1], z), rtol=1e-14)
 
@@ -141,7 +146,7 @@ def test_observed_order_against_exact_solution(form, name):
     slopes = np.polyfit(np.log(steps), np.log(errors), 1)[0]
     assert slopes.shape == (len(ENSEMBLE_N0),)
     for member, slope in enumerate(slopes):
-        # Global order p of the scheme (Hairer, Norsett & Wanner 1993, Thm II.3.6)
+        # Global order p of the scheme (CHECKS.md; Hairer, Norsett & Wanner 1993, sec. II.3)
         assert abs(slope - scheme.order) < ORDER_TOLERANCE, (form, name, member, slope)
 
 
@@ -150,8 +155,14 @@ def test_ensemble_members_are_independent():
     model = built_in("logistic")
     together = integrate(model.rate, ENSEMBLE_N0, ENSEMBLE, 0.1, 30, SCHEMES["rk4"])
     for i in range(len(ENSEMBLE_N0)):
-        alone = integrate(model.rate, ENSEMBLE_N0[i:i + 1],
-                          {k: v[i:i + 1] for k, v in ENSEMBLE.items()}, 0.1, 30, SCHEMES["rk4"])
+        alone = integrate(
+            model.rate,
+            ENSEMBLE_N0[i : i + 1],
+            {k: v[i : i + 1] for k, v in ENSEMBLE.items()},
+            0.1,
+            30,
+            SCHEMES["rk4"],
+        )
         np.testing.assert_array_equal(together[:, i], alone[:, 0])
 
 
@@ -174,15 +185,22 @@ def test_time_dependent_rate_uses_stage_times():
     # b.c = 1/2 is exact for linear integrands; Hairer, Norsett & Wanner 1993, sec. II.1).
     for name in ("heun", "midpoint", "rk4"):
         out = integrate(lambda t, n, p: t + 0 * n, np.zeros(1), {}, 0.3, 10, SCHEMES[name])
-        np.testing.assert_allclose(out[:, 0], (0.3 * np.arange(11)) ** 2 / 2, rtol=1e-13,
-                                   atol=1e-15)
+        np.testing.assert_allclose(
+            out[:, 0], (0.3 * np.arange(11)) ** 2 / 2, rtol=1e-13, atol=1e-15
+        )
 
 
 def test_overflow_is_returned_not_raised():
     # Euler on the logistic law from N0 = 2K with r h = 5 leaves the basin and overflows.
     model = built_in("logistic")
-    out = integrate(model.rate, np.array([200.0, 50.0]), {"r": np.array([5.0, 0.5]),
-                    "K": np.array([100.0, 100.0])}, 1.0, 40, SCHEMES["euler"])
+    out = integrate(
+        model.rate,
+        np.array([200.0, 50.0]),
+        {"r": np.array([5.0, 0.5]), "K": np.array([100.0, 100.0])},
+        1.0,
+        40,
+        SCHEMES["euler"],
+    )
     assert not np.isfinite(out[-1, 0])
     assert np.all(np.isfinite(out[:, 1]))
 
@@ -209,8 +227,7 @@ def test_euler_on_logistic_is_the_logistic_map():
     r = RH_VALUES / step
     k = np.array([100.0, 40.0, 7.0, 1000.0, 250.0])
     n0 = 0.1 * k
-    states = integrate(built_in("logistic").rate, n0, {"r": r, "K": k}, step, 60,
-                       SCHEMES["euler"])
+    states = integrate(built_in("logistic").rate, n0, {"r": r, "K": k}, step, 60, SCHEMES["euler"])
     mu = 1 + r * step
     x = r * step * states / ((1 + r * step) * k)
     assert np.all((x > 0) & (x < 1))  # mu <= 4 keeps the map on [0, 1] (May 1976)
@@ -224,8 +241,9 @@ def test_euler_logistic_map_regimes():
     step = 1.0
     rh = np.array([0.8, 1.0, 1.6, 2.3])
     k = np.full(4, 100.0)
-    states = integrate(built_in("logistic").rate, np.full(4, 10.0), {"r": rh, "K": k}, step,
-                       400, SCHEMES["euler"])
+    states = integrate(
+        built_in("logistic").rate, np.full(4, 10.0), {"r": rh, "K": k}, step, 400, SCHEMES["euler"]
+    )
     increments = np.diff(states, axis=0)
     assert np.all(increments[:, :2] >= 0)
     assert np.all(states[:, :2] <= 100.0 * (1 + 1e-15))

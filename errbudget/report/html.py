@@ -1,15 +1,72 @@
-"""Minimal HTML rendering (to be extended): Jinja2 with autoescaping."""
+"""budget.html: one self-contained, printable page rendered with Jinja2 (autoescaping on).
+
+The template (``budget.html.j2``) and the stylesheet (``style.css``) sit beside this module;
+the stylesheet is inlined into a <style> block, the figures are inline SVG. The page loads
+nothing: no script, no font, no image, no stylesheet from anywhere else.
+"""
 
 from __future__ import annotations
 
+from functools import cache
+from pathlib import Path
+
 import jinja2
+from markupsafe import Markup
 
-_TEMPLATE = """<!doctype html><html lang="en"><head><meta charset="utf-8">
-<title>Error budget: {{ b.case.title }}</title></head><body>
-<h1>{{ b.case.title }}</h1><p>{{ b.verdict.reason }}</p>
-<pre>{{ case_text }}</pre></body></html>"""
+from errbudget.report import context, figures
+
+HERE = Path(__file__).parent
+TEMPLATE = "budget.html.j2"
+STYLESHEET = "style.css"
 
 
-def render_html(budget: dict, series: dict, case_text: str) -> str:
-    env = jinja2.Environment(autoescape=True)
-    return env.from_string(_TEMPLATE).render(b=budget, case_text=case_text)
+@cache
+def _environment() -> jinja2.Environment:
+    return jinja2.Environment(
+        loader=jinja2.FileSystemLoader(HERE),
+        autoescape=True,  # every user string (title, names, case text, messages) is escaped
+        undefined=jinja2.StrictUndefined,  # a typo in the template fails loudly, not blank
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+
+
+def _stylesheet() -> Markup:
+    css = (HERE / STYLESHEET).read_text(encoding="utf-8")
+    if "</" in css:  # ours, but a closing tag inside would end the <style> block early
+        raise ValueError(f"{STYLESHEET} must not contain '</'")
+    return Markup(css)
+
+
+def render_html(budget: dict, series: dict, case_text: str, *,
+                include_figures: bool = True) -> str:
+    """The HTML budget of one run.
+
+    Parameters
+    ----------
+    budget : dict
+        budget.json of the run (``Budget.to_dict()``, with ``run.timestamp`` and
+        ``since_last`` when the command line set them).
+    series : dict
+        ``Budget.series``: time series for the forecast figure (may be empty: that figure
+        is then replaced by a note).
+    case_text : str
+        The case file's text, shown escaped in the "How it was made" section.
+    include_figures : bool, optional
+        False leaves out the matplotlib figures (each replaced by a note), e.g. for a quick
+        preview.
+
+    Returns
+    -------
+    str
+        A complete HTML document.
+    """
+    page = context.build(budget, case_text)
+    if include_figures:
+        page["figures"] = figures.all_figures(budget, series)
+    else:
+        page["figures"] = [figures.skipped(key, title, "figures were left out of this render")
+                           for key, title in (("budget", "Error budget per quantity"),
+                                              ("forecast", "The forecast over time"))]
+    page["css"] = _stylesheet()
+    return _environment().get_template(TEMPLATE).render(**page)

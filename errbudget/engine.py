@@ -1,0 +1,160 @@
+"""The compiled ensemble engine: numba kernels generated from checked rate expressions.
+
+:func:`errbudget.schemes.integrate` (numpy, vectorised over the ensemble) stays the
+reference implementation and the path for float32 / long double round-off runs. This module
+gives the same states for binary64 runs, one sample block per thread (numba ``prange``), so
+both cores are used; each member's arithmetic is the same whatever the thread count, so a
+parallel run equals a single-core run bit for bit.
+
+Built-in laws are compiled from their expression in :data:`errbudget.models.RATE_TEXT`,
+custom laws from the checked tree of their :class:`~errbudget.expr.RateExpression`, through
+the same whitelist. Without numba, :func:`kernel_for` returns None and the caller
+(:func:`errbudget.ensemble.solve`) uses the numpy reference.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import inspect
+import sys
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import numpy as np
+
+from errbudget.schemes import Scheme
+
+_KERNELS: dict[str, object] = {}  # generated source -> compiled kernel, for this process
+_STATE = {"numba": None}  # None: not tried yet; False: unavailable; else the module
+
+
+@dataclass(frozen=True)
+class RateSpec:
+    """What the kernel needs to evaluate a law: checked tree, parameter order, unit factors.
+
+    The rate is f(t, N, p) = out_factor * g(t * t_factor, N * n_factor, p_i * factor_i), g
+    the expression; built-in laws have every factor equal to 1 (exact in binary64).
+    """
+
+    tree: object
+    names: tuple[str, ...]
+    factors: tuple[float, ...]
+    t_factor: float = 1.0
+    n_factor: float = 1.0
+    out_factor: float = 1.0
+
+
+def numba_module():
+    """The numba module, or None when it cannot be imported (imported on first use only)."""
+    if _STATE["numba"] is None:
+        try:
+            import numba
+        except Exception:  # noqa: BLE001 - any import failure means: use the numpy path
+            _STATE["numba"] = False
+        else:
+            _STATE["numba"] = numba
+    return _STATE["numba"] or None
+
+
+def rate_spec(model) -> RateSpec | None:
+    """The compilable description of a :class:`~errbudget.models.GrowthModel`, or None."""
+    from errbudget import expr, models
+
+    if model.form in models.RATE_TEXT:
+        names = model.parameter_names
+        tree = expr.parse_rate(models.RATE_TEXT[model.form], names).tree
+        return RateSpec(tree, tuple(names), (1.0,) * len(names))
+    if model.form != "custom":
+        return None
+    # The custom law is a closure built by case.py around its RateExpression and the factors
+    # to pint's coherent root units; read them back rather than parsing anything again.
+    try:
+        outer = inspect.getclosurevars(model.rate).nonlocals
+        expression = outer["expression"]
+        inner = inspect.getclosurevars(outer["coherent"]).nonlocals
+        factors = inner["factors"]
+        if not isinstance(expression, expr.RateExpression):
+            return None
+        names = tuple(sorted(factors))
+        return RateSpec(
+            expression.tree,
+            names,
+            tuple(float(factors[name]) for name in names),
+            float(outer["t_factor"]),
+            float(outer["n_factor"]),
+            float(outer["out_factor"]),
+        )
+    except (KeyError, TypeError, ValueError):
+        return None
+
+
+def kernel_for(spec: RateSpec):
+    """The compiled kernel for ``spec`` (generated, written and loaded once), or None."""
+    numba = numba_module()
+    if numba is None:
+        return None
+    from errbudget import codegen
+
+    source = codegen.kernel_source(spec.tree, spec.names)
+    if source not in _KERNELS:
+        path = codegen.write_module(source)
+        name = f"errbudget_kernels_{path.stem}"
+        loader = importlib.util.spec_from_file_location(name, path)
+        module = importlib.util.module_from_spec(loader)
+        sys.modules[name] = module  # numba's cache re-imports the module by name on load
+        loader.loader.exec_module(module)
+        _KERNELS[source] = module.kernel
+    return _KERNELS[source]
+
+
+def integrate_compiled(
+    kernel,
+    spec: RateSpec,
+    n0: np.ndarray,
+    params: Mapping[str, np.ndarray],
+    step: float,
+    n_steps: int,
+    scheme: Scheme,
+) -> np.ndarray:
+    """Same contract as :func:`errbudget.schemes.integrate` with ``dtype=float64``.
+
+    Parameters
+    ----------
+    kernel : compiled function from :func:`kernel_for`
+    spec : RateSpec
+    n0 : ndarray, shape (S,)
+        Initial values [population].
+    params : mapping of str to ndarray of shape (S,) or scalar
+        Parameters in the model's internal units.
+    step : float
+        Time step h [time].
+    n_steps : int
+        Number of steps.
+    scheme : Scheme
+
+    Returns
+    -------
+    ndarray, shape (n_steps + 1, S), float64
+    """
+    y0 = np.array(n0, dtype=np.float64).reshape(-1)
+    size = y0.size
+    rows = np.empty((max(len(spec.names), 1), size))
+    for index, (name, factor) in enumerate(zip(spec.names, spec.factors, strict=True)):
+        value = np.broadcast_to(np.asarray(params[name], dtype=np.float64), (size,))
+        # same product as case.py's coherent(p); skipped when exact (factor 1)
+        rows[index] = value * factor if factor != 1.0 else value
+    out = np.empty((n_steps + 1, size))
+    out[0] = y0
+    kernel(
+        out,
+        rows,
+        float(step),
+        int(n_steps),
+        np.array(scheme.a, dtype=np.float64).reshape(scheme.stages, scheme.stages),
+        np.array(scheme.b, dtype=np.float64),
+        np.array(scheme.c, dtype=np.float64),
+        spec.t_factor,
+        spec.n_factor,
+        spec.out_factor,
+    )
+    return out
