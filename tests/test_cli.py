@@ -509,16 +509,6 @@ def test_bad_case_through_python_m_has_no_traceback(tmp_path):
     assert not (tmp_path / "out").exists()
 
 
-def test_malformed_toml_through_python_m_has_no_traceback(tmp_path):
-    (tmp_path / "broken.toml").write_text('[model\nform = "logistic"\n')
-    done = _subprocess(["check", "broken.toml"], tmp_path)
-    assert done.returncode == EXIT_INPUT
-    assert "Traceback" not in done.stderr
-    assert done.stderr.count("\n") == 1
-    assert done.stderr.startswith("errbudget: error: broken.toml: invalid TOML: ")
-    assert "line 1" in done.stderr
-
-
 def test_version_through_python_m(tmp_path):
     done = _subprocess(["--version"], tmp_path)
     assert done.returncode == 0, done.stderr

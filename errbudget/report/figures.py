@@ -35,6 +35,7 @@ GRID = "#d9dee2"
 WIDTH_IN = 6.9  # figure width [in]: inside the 180 mm print column, so print is at scale 1
 PANEL_IN = 1.45  # height of one per-quantity bar panel [in]
 LOG_SPAN = 20.0  # bar values spanning more than this factor are drawn on a log axis
+LOG_TICKS = 8  # at most about this many labelled ticks on a log axis
 _RC = {
     "svg.fonttype": "none",  # text stays text: selectable, searchable, small
     "svg.hashsalt": "errbudget",  # deterministic ids: the same budget gives the same file
@@ -132,7 +133,8 @@ def _positive(values) -> list[float]:
 
 def _tick_text(value, _position=None) -> str:
     """Tick labels as plain text (no mathtext: faster, and it reads like the tables)."""
-    return number(value, 3, trim=True) or ""
+    text = number(value, 3, trim=True) or ""
+    return text.removeprefix("1 × ")  # a bare power of ten reads "10⁻¹²", not "1 × 10⁻¹²"
 
 
 def _plain_ticks(ax, axis: str = "both", log_subs: tuple = (1.0,)) -> None:
@@ -140,7 +142,7 @@ def _plain_ticks(ax, axis: str = "both", log_subs: tuple = (1.0,)) -> None:
     for name in ("x", "y") if axis == "both" else (axis,):
         target = ax.xaxis if name == "x" else ax.yaxis
         if target.get_scale() == "log":
-            target.set_major_locator(ticker.LogLocator(base=10, subs=log_subs, numticks=12))
+            target.set_major_locator(ticker.LogLocator(base=10, subs=log_subs, numticks=LOG_TICKS))
             target.set_minor_locator(ticker.NullLocator())  # unlabelled minors cost time, add little
         target.set_major_formatter(ticker.FuncFormatter(_tick_text))
 
@@ -374,7 +376,7 @@ def forecast(budget: dict, series: dict) -> Figure:
         bottom.set_ylabel(f"error [{unit_n}]")
         bottom.set_xlabel(f"time [{unit_t}]")
         bottom.grid(color=GRID, linewidth=0.6)
-        bottom.set_title("Numerical error of the case step (95th pct. over the ensemble)",
+        bottom.set_title("Numerical error of the case's step (95th percentile over the ensemble)",
                          pad=4)
         fig.tight_layout(h_pad=0.8)
         svg = to_svg(fig, key, alt)
