@@ -326,7 +326,6 @@ def assemble(
                 }
                 for t in recommendation["tried"]
             ],
-            "cost": _cost(case, recommendation),
             "half_step_check": None
             if recommendation["half_check"] is None
             else {
@@ -345,6 +344,7 @@ def assemble(
             "ladder_capped": bool(steps_info["capped"]),
             "roundoff_method": rounding["method"],
             "elapsed_seconds": elapsed,
+            "cost": _cost(case, recommendation),
         },
     }
     return clean(data)

@@ -38,6 +38,7 @@ COUNTS_KEYS = ("file", "time", "time_unit", "count", "error", "fit", "start")
 ERROR_MODELS = ("poisson", "negative-binomial", "lognormal", "normal")
 TABLE_KEYS = ("value", "sd", "cv", "low", "high", "mode", "dist")
 MAX_CASE_BYTES = 1_000_000  # a case file is a few kilobytes; refuse anything absurd
+MIN_SAMPLES = 16  # smallest Sobol base sample (see spread.MIN_BASE_SAMPLES)
 DEFAULT_MEMORY_LIMIT_MB = 4096  # resource ceiling for one run, overridable per case
 
 # Parameters that must be strictly positive, by name, for the built-in laws.
@@ -616,6 +617,22 @@ def _quantities(reader, entries, population, time_unit, horizon) -> tuple[Quanti
 
 
 def _budget(reader, table) -> BudgetSpec:
+    spec = _budget_values(reader, table)
+    if not is_design_size(spec.samples):
+        raise reader.fail(
+            f"{spec.samples} is not a power of two of at least {MIN_SAMPLES}; accepted: a "
+            "power of two such as 512 or 1024 (the Sobol design needs one)",
+            "budget.samples",
+        )
+    return spec
+
+
+def is_design_size(samples: int) -> bool:
+    """Whether ``samples`` can be the base size of a Sobol design (a power of two >= 16)."""
+    return samples >= MIN_SAMPLES and not samples & (samples - 1)
+
+
+def _budget_values(reader, table) -> BudgetSpec:
     table = reader.table(table, "budget", BUDGET_KEYS)
     defaults = BudgetSpec()
     return BudgetSpec(
@@ -761,7 +778,8 @@ def describe(case: Case) -> str:
             detail = f"at {q.at:g} {case.time_unit}"
         elif q.kind == "time-to":
             detail = f"level {q.level:g} {case.population_unit}"
-        lines.append(f"    {q.name}: {q.kind} {detail} [{case.quantity_unit(q)}]".rstrip())
+        kind = f"{q.kind} {detail}" if detail else q.kind
+        lines.append(f"    {q.name}: {kind} [{case.quantity_unit(q)}]")
     b = case.budget
     lines.append(
         f"  budget: fraction {b.fraction:g}, samples {b.samples}, seed {b.seed}, "

@@ -37,7 +37,9 @@ def build_parser() -> argparse.ArgumentParser:
         default=Path(DEFAULT_OUT),
         help="folder for the outputs (default: reports/)",
     )
-    run.add_argument("--samples", type=_positive_int, help="base sample size of the Sobol design")
+    run.add_argument(
+        "--samples", type=_design_size, help="base sample size of the Sobol design (power of 2)"
+    )
     run.add_argument("--seed", type=_non_negative_int, help="seed of the sampling design")
     run.add_argument("--quiet", action="store_true", help="no progress on stderr")
     check = commands.add_parser("check", help="validate cases and print what they resolve to")
@@ -45,10 +47,14 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _positive_int(text: str) -> int:
+def _design_size(text: str) -> int:
+    from errbudget.case import MIN_SAMPLES, is_design_size
+
     value = _non_negative_int(text)
-    if value == 0:
-        raise argparse.ArgumentTypeError(f"expected a positive integer, got {text!r}")
+    if not is_design_size(value):
+        raise argparse.ArgumentTypeError(
+            f"expected a power of two of at least {MIN_SAMPLES} such as 512 or 1024, got {text!r}"
+        )
     return value
 
 

@@ -16,14 +16,18 @@ from __future__ import annotations
 
 import importlib.util
 import inspect
+import os
 import sys
 from collections.abc import Mapping
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 
 from errbudget.schemes import Scheme
 
+# Threads sharing an ensemble: the cores this process may run on.
+THREADS = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
 _KERNELS: dict[str, object] = {}  # generated source -> compiled kernel, for this process
 _STATE = {"numba": None}  # None: not tried yet; False: unavailable; else the module
 
@@ -88,14 +92,14 @@ def rate_spec(model) -> RateSpec | None:
         return None
 
 
-def kernel_for(spec: RateSpec):
-    """The compiled kernel for ``spec`` (generated, written and loaded once), or None."""
+def kernel_for(spec: RateSpec, scheme: Scheme):
+    """The compiled kernel for ``spec`` and ``scheme`` (generated and loaded once), or None."""
     numba = numba_module()
     if numba is None:
         return None
     from errbudget import codegen
 
-    source = codegen.kernel_source(spec.tree, spec.names)
+    source = codegen.kernel_source(spec.tree, spec.names, scheme)
     if source not in _KERNELS:
         path = codegen.write_module(source)
         name = f"errbudget_kernels_{path.stem}"
@@ -115,6 +119,7 @@ def integrate_compiled(
     step: float,
     n_steps: int,
     scheme: Scheme,
+    threads: int | None = None,
 ) -> np.ndarray:
     """Same contract as :func:`errbudget.schemes.integrate` with ``dtype=float64``.
 
@@ -131,6 +136,10 @@ def integrate_compiled(
     n_steps : int
         Number of steps.
     scheme : Scheme
+        The tableau the kernel was generated for.
+    threads : int, optional
+        Threads sharing the members (default :data:`THREADS`); the states do not depend
+        on it.
 
     Returns
     -------
@@ -145,16 +154,29 @@ def integrate_compiled(
         rows[index] = value * factor if factor != 1.0 else value
     out = np.empty((n_steps + 1, size))
     out[0] = y0
-    kernel(
-        out,
-        rows,
-        float(step),
-        int(n_steps),
-        np.array(scheme.a, dtype=np.float64).reshape(scheme.stages, scheme.stages),
-        np.array(scheme.b, dtype=np.float64),
-        np.array(scheme.c, dtype=np.float64),
-        spec.t_factor,
-        spec.n_factor,
-        spec.out_factor,
-    )
+    factors = (spec.t_factor, spec.n_factor, spec.out_factor)
+    parts = _partition(size, threads if threads is not None else THREADS)
+    if len(parts) == 1:
+        kernel(out, rows, float(step), int(n_steps), 0, size, *factors)
+        return out
+    # The kernel releases the GIL: each thread fills its own columns of ``out``.
+    with ThreadPoolExecutor(len(parts)) as pool:
+        jobs = [
+            pool.submit(kernel, out, rows, float(step), int(n_steps), lo, hi, *factors)
+            for lo, hi in parts
+        ]
+        for job in jobs:
+            job.result()
     return out
+
+
+def _partition(size: int, threads: int) -> list[tuple[int, int]]:
+    """Column ranges, one per thread, in whole blocks; a single range for small ensembles."""
+    from errbudget.codegen import BLOCK
+
+    blocks = -(-size // BLOCK)
+    threads = max(1, min(threads, blocks))
+    if threads == 1:
+        return [(0, size)]
+    edges = [min(size, BLOCK * (blocks * i // threads)) for i in range(threads + 1)]
+    return [(lo, hi) for lo, hi in zip(edges[:-1], edges[1:], strict=True) if hi > lo]

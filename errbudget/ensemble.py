@@ -13,7 +13,7 @@ from errbudget.quantities import Trajectory, evaluate
 from errbudget.schemes import Scheme, get_scheme, integrate
 
 USE_COMPILED = True  # False forces the numpy reference path (tests, benchmarks)
-_COMPILED: dict[int, tuple] = {}  # id(model) -> (model, (kernel, spec) or None)
+_COMPILED: dict[tuple, tuple] = {}  # (id(law), scheme) -> (law, (kernel, spec) or None)
 
 
 def n_steps_for(horizon: float, step: float) -> int:
@@ -45,7 +45,7 @@ def solve(
     scheme = scheme or get_scheme(case.scheme)
     law = {name: np.asarray(value, dtype=dtype) for name, value in params.items() if name != "N0"}
     n_steps = n_steps_for(case.horizon, step)
-    compiled = _compiled(case.model) if np.dtype(dtype) == np.float64 else None
+    compiled = _compiled(case.model, scheme) if np.dtype(dtype) == np.float64 else None
     if compiled is not None:
         kernel, spec = compiled
         states = engine.integrate_compiled(kernel, spec, params["N0"], law, step, n_steps, scheme)
@@ -54,23 +54,24 @@ def solve(
     return Trajectory(states, step, case.horizon, case.model.rate, law)
 
 
-def _compiled(model) -> tuple[object, engine.RateSpec] | None:
+def _compiled(model, scheme: Scheme) -> tuple[object, engine.RateSpec] | None:
     """The compiled kernel and rate description of ``model``, or None (use numpy).
 
-    Remembered on the model object: the tree walk and the kernel lookup happen once per
-    law per process. Any failure to generate or compile falls back to the numpy path.
+    Remembered per (law object, scheme): the tree walk and the kernel lookup happen once
+    per process. Any failure to generate or compile falls back to the numpy path.
     """
     if not USE_COMPILED:
         return None
-    found = _COMPILED.get(id(model))
+    key = (id(model), scheme.name)
+    found = _COMPILED.get(key)
     if found is None or found[0] is not model:
         try:
             spec = engine.rate_spec(model)
-            kernel = engine.kernel_for(spec) if spec is not None else None
+            kernel = engine.kernel_for(spec, scheme) if spec is not None else None
         except Exception:  # noqa: BLE001 - e.g. a read-only cache folder: numpy still works
             kernel = None
         found = (model, (kernel, spec) if kernel is not None else None)
-        _COMPILED[id(model)] = found
+        _COMPILED[key] = found
     return found[1]
 
 

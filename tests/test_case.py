@@ -434,11 +434,6 @@ def test_describe_shows_converted_units_of_a_density_case(tmp_path):
     assert line.split() == ["largest:", "peak", f"[{case.population_unit}]"]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="describe() writes two spaces before the unit of a peak "
-    "or minimum quantity: the empty detail is joined with spaces on both sides",
-)
 def test_describe_has_single_spaces_for_quantities_without_detail(tmp_path):
     text = logistic_case('r = "0.06 / day"\nK = "9000 crayfish"\nN0 = "400 crayfish"')
     out = describe(load_case(write(tmp_path, "c.toml", text)))

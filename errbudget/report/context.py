@@ -11,45 +11,67 @@ from importlib import metadata
 from errbudget.report import fmt
 from errbudget.report.fmt import Cell
 
-QUESTION = ("Is the time step of this forecast small enough, given how well the parameters "
-            "are known?")
-KIND_WORDS = {"value": "value at a set time", "time-to": "time to reach a level",
-              "peak": "highest value", "minimum": "lowest value"}
+QUESTION = (
+    "Is the time step of this forecast small enough, given how well the parameters are known?"
+)
+KIND_WORDS = {
+    "value": "value at a set time",
+    "time-to": "time to reach a level",
+    "peak": "highest value",
+    "minimum": "lowest value",
+}
 LIBRARIES = ("numpy", "scipy", "SALib", "pint", "matplotlib", "Jinja2")
 LIST_SHOWN = 8  # lists longer than this are summarised in generic tables, not printed whole
 WHY_PERCENTILE = "some ensemble members diverged or never reached the level"
 WHY_GCI = "the order observed on the three coarsest levels is not trusted"
 WHY_SD = "the parameter spread is undefined"
 METHODS = [
-    ("Discretisation error", "Each quantity is solved on a ladder of halved steps; the "
-     "observed order of accuracy and Richardson extrapolation give a reference value, and the "
-     "error of the case's step is taken over the whole parameter ensemble at the stated "
-     "percentile.",
-     "L. F. Richardson (1911), Phil. Trans. R. Soc. A 210, 307–357, "
-     "doi:10.1098/rsta.1911.0009"),
-    ("Grid convergence index", "Roache's GCI with safety factor 1.25 (three or more levels "
-     "and a trusted observed order) or 3, following the procedure of Celik et al. for the "
-     "observed order and oscillatory convergence.",
-     "P. J. Roache (1998), Verification and Validation in Computational Science and "
-     "Engineering, Hermosa; I. B. Celik et al. (2008), J. Fluids Eng. 130, 078001, "
-     "doi:10.1115/1.2960953"),
-    ("Parameter uncertainty", "Sampling design of Saltelli et al. over the uncertain inputs; "
-     "first-order and total Sobol indices with bootstrap confidence intervals; forecast "
-     "spread computed on accurate (extrapolated) solutions.",
-     "I. M. Sobol' (2001), Math. Comput. Simul. 55, 271–280, "
-     "doi:10.1016/S0378-4754(00)00270-6; A. Saltelli et al. (2010), Comput. Phys. Commun. "
-     "181, 259–270, doi:10.1016/j.cpc.2009.09.018"),
-    ("Combining the components", "Independent standard uncertainties combined by "
-     "root-sum-square; each component's share is its part of the combined variance.",
-     "ASME V&V 20-2009, Standard for Verification and Validation in Computational Fluid "
-     "Dynamics and Heat Transfer"),
-    ("Step limits", "Linear stability of the scheme at the model's stable equilibrium: the "
-     "explicit Euler logistic map oscillates and then turns unstable as r·h grows.",
-     "R. M. May (1976), Nature 261, 459–467, doi:10.1038/261459a0"),
-    ("Round-off", "The run is repeated in a wider float type and compared; the bound is the "
-     "unit round-off times the number of steps times the size of the solution.",
-     "N. J. Higham (2002), Accuracy and Stability of Numerical Algorithms, 2nd ed., SIAM, "
-     "doi:10.1137/1.9780898718027"),
+    (
+        "Discretisation error",
+        "Each quantity is solved on a ladder of halved steps; the "
+        "observed order of accuracy and Richardson extrapolation give a reference value, and the "
+        "error of the case's step is taken over the whole parameter ensemble at the stated "
+        "percentile.",
+        "L. F. Richardson (1911), Phil. Trans. R. Soc. A 210, 307–357, doi:10.1098/rsta.1911.0009",
+    ),
+    (
+        "Grid convergence index",
+        "Roache's GCI with safety factor 1.25 (three or more levels "
+        "and a trusted observed order) or 3, following the procedure of Celik et al. for the "
+        "observed order and oscillatory convergence.",
+        "P. J. Roache (1998), Verification and Validation in Computational Science and "
+        "Engineering, Hermosa; I. B. Celik et al. (2008), J. Fluids Eng. 130, 078001, "
+        "doi:10.1115/1.2960953",
+    ),
+    (
+        "Parameter uncertainty",
+        "Sampling design of Saltelli et al. over the uncertain inputs; "
+        "first-order and total Sobol indices with bootstrap confidence intervals; forecast "
+        "spread computed on accurate (extrapolated) solutions.",
+        "I. M. Sobol' (2001), Math. Comput. Simul. 55, 271–280, "
+        "doi:10.1016/S0378-4754(00)00270-6; A. Saltelli et al. (2010), Comput. Phys. Commun. "
+        "181, 259–270, doi:10.1016/j.cpc.2009.09.018",
+    ),
+    (
+        "Combining the components",
+        "Independent standard uncertainties combined by "
+        "root-sum-square; each component's share is its part of the combined variance.",
+        "ASME V&V 20-2009, Standard for Verification and Validation in Computational Fluid "
+        "Dynamics and Heat Transfer",
+    ),
+    (
+        "Step limits",
+        "Linear stability of the scheme at the model's stable equilibrium: the "
+        "explicit Euler logistic map oscillates and then turns unstable as r·h grows.",
+        "R. M. May (1976), Nature 261, 459–467, doi:10.1038/261459a0",
+    ),
+    (
+        "Round-off",
+        "The run is repeated in a wider float type and compared; the bound is the "
+        "unit round-off times the number of steps times the size of the solution.",
+        "N. J. Higham (2002), Accuracy and Stability of Numerical Algorithms, 2nd ed., SIAM, "
+        "doi:10.1137/1.9780898718027",
+    ),
 ]
 CAUTIONS = [
     "Model-form error: whether the growth law itself fits the population is not part of "
@@ -61,9 +83,11 @@ CAUTIONS = [
     "Errors in the counts beyond the stated observation model (missed animals, double "
     "counts, changing survey effort) are not included.",
 ]
-DISCLAIMER = ("This report checks the arithmetic of a forecast, not whether the forecast or "
-              "the decision is wise. Decisions about living stocks follow local regulations and "
-              "the advice of qualified biologists.")
+DISCLAIMER = (
+    "This report checks the arithmetic of a forecast, not whether the forecast or "
+    "the decision is wise. Decisions about living stocks follow local regulations and "
+    "the advice of qualified biologists."
+)
 
 
 def build(budget: dict, case_text: str) -> dict:
@@ -80,21 +104,26 @@ def build(budget: dict, case_text: str) -> dict:
         "marker": "ADEQUATE" if verdict.get("adequate") else "NOT ADEQUATE",
         "reason": verdict.get("reason") or "no verdict was recorded",
         "case_step": fmt.step(step.get("value"), step.get("unit")),
-        "recommended": fmt.step(rec.get("value"), rec.get("unit"),
-                                why="no candidate step meets the rule"),
+        "recommended": fmt.step(
+            rec.get("value"), rec.get("unit"), why="no candidate step meets the rule"
+        ),
         "fraction": fmt.percent(verdict.get("fraction")),
         "facts": _facts(budget),
         "columns": [q.get("name", "") for q in quantities],
         "groups": _table(quantities, verdict.get("fraction")),
-        "flags": [{"code": f.get("code", ""), "message": f.get("message", "")}
-                  for f in budget.get("flags") or []],
+        "flags": [
+            {"code": f.get("code", ""), "message": f.get("message", "")}
+            for f in budget.get("flags") or []
+        ],
         "since_last": _since_last(budget.get("since_last"), quantities),
         "fit": _fit(budget.get("fit")),
         "validation": _generic(budget.get("validation")),
         "tried": _tried(budget.get("recommendation") or {}),
         "provenance": _provenance(budget),
-        "ladder": ", ".join(fmt.step(s.get("value"), None).text
-                            for s in (budget.get("run") or {}).get("ladder") or []),
+        "ladder": ", ".join(
+            fmt.step(s.get("value"), None).text
+            for s in (budget.get("run") or {}).get("ladder") or []
+        ),
         "methods": METHODS,
         "cautions": CAUTIONS,
         "disclaimer": DISCLAIMER,
@@ -122,6 +151,7 @@ def _row(label: str, cells: list[Cell], note: str = "", strong: bool = False) ->
 
 def _table(quantities: list[dict], fraction) -> list[dict]:
     """The budget table, quantities as columns, grouped rows (what, error, spread, test)."""
+
     def col(get) -> list[Cell]:
         return [get(q) for q in quantities]
 
@@ -137,62 +167,156 @@ def _table(quantities: list[dict], fraction) -> list[dict]:
             return None
         return pct + (fmt.finite((q.get("roundoff") or {}).get("error")) or 0.0)
 
-    pct_label = f"{fmt.number(_first(quantities, 'percentile') or 95, 3, trim=True)}th percentile"
+    pct_label = f"{fmt.number(_first(quantities, 'percentile') or 95, 3)}th percentile"
     share_text = fmt.percent(fraction).text
     return [
-        {"title": "The forecast", "rows": [
-            _row("Kind", col(lambda q: Cell(KIND_WORDS.get(q.get("kind"), q.get("kind") or "")))),
-            _row("Value at the case's step", col(lambda q: fmt.with_unit(
-                q.get("value"), q.get("unit"), fmt.SIG_VALUE,
-                why="not reached within the horizon, or the run diverged")),
-                 "nominal parameters"),
-            _row("Reference value", col(lambda q: fmt.with_unit(
-                q.get("reference"), q.get("unit"), fmt.SIG_VALUE,
-                why="the finest ladder levels are not finite")),
-                 "Richardson-extrapolated, nominal parameters"),
-        ]},
-        {"title": "The test", "rows": [
-            _row("Numerical error", col(lambda q: fmt.with_unit(
-                numerical(q), q.get("unit"), why=WHY_PERCENTILE)),
-                 f"discretisation ({pct_label} over the ensemble) + round-off", strong=True),
-            _row("Parameter standard deviation", col(lambda q: fmt.with_unit(
-                par(q).get("sd"), q.get("unit"), why=WHY_SD)), "spread of the forecast"),
-            _row("Allowance", col(lambda q: fmt.with_unit(
-                q.get("allowance"), q.get("unit"), why=WHY_SD)),
-                 f"{share_text} of the standard deviation", strong=True),
-            _row("Numerical error ÷ parameter sd", col(lambda q: fmt.ratio(
-                q.get("numerical_to_parameter"), why="error or spread undefined")),
-                 f"must not exceed {fmt.number(fraction, 3, trim=True)}"),
-            _row("Verdict for this quantity", col(_quantity_verdict), strong=True),
-        ]},
-        {"title": "Numerical error in detail", "rows": [
-            _row(f"Discretisation error, {pct_label}", col(lambda q: fmt.with_unit(
-                disc(q).get("error_percentile"), q.get("unit"), why=WHY_PERCENTILE)),
-                 "over the parameter ensemble"),
-            _row("Discretisation error at nominal parameters", col(lambda q: fmt.with_unit(
-                disc(q).get("error"), q.get("unit"), why="no reference value")),
-                 "|value − reference|"),
-            _row("Grid convergence index", col(lambda q: fmt.with_unit(
-                disc(q).get("gci"), q.get("unit"), why=WHY_GCI)), "Roache, case's step"),
-            _row("Observed order", col(lambda q: _order(disc(q)))),
-            _row("Round-off, measured", col(lambda q: fmt.with_unit(
-                (q.get("roundoff") or {}).get("error"), q.get("unit"), why="not measured")),
-                 "binary64 against a wider type"),
-            _row("Round-off, bound", col(lambda q: fmt.with_unit(
-                (q.get("roundoff") or {}).get("bound"), q.get("unit"), why="not computed")),
-                 "unit round-off × steps × size"),
-        ]},
-        {"title": "Parameter uncertainty in detail", "rows": [
-            _row("Central interval", col(lambda q: fmt.interval(
-                par(q).get("low"), par(q).get("high"), q.get("unit"), par(q).get("level"),
-                why=WHY_SD))),
-            _row("Largest driver", col(lambda q: _driver(par(q).get("indices")))),
-            _row("Combined uncertainty", col(lambda q: fmt.with_unit(
-                q.get("combined"), q.get("unit"), why="a component is undefined")),
-                 "root-sum-square (ASME V&V 20)"),
-            _row("Shares of the variance", col(_shares), "discretisation / round-off / "
-                 "parameters"),
-        ]},
+        {
+            "title": "The forecast",
+            "rows": [
+                _row(
+                    "Kind", col(lambda q: Cell(KIND_WORDS.get(q.get("kind"), q.get("kind") or "")))
+                ),
+                _row(
+                    "Value at the case's step",
+                    col(
+                        lambda q: fmt.with_unit(
+                            q.get("value"),
+                            q.get("unit"),
+                            fmt.SIG_VALUE,
+                            why="not reached within the horizon, or the run diverged",
+                        )
+                    ),
+                    "nominal parameters",
+                ),
+                _row(
+                    "Reference value",
+                    col(
+                        lambda q: fmt.with_unit(
+                            q.get("reference"),
+                            q.get("unit"),
+                            fmt.SIG_VALUE,
+                            why="the finest ladder levels are not finite",
+                        )
+                    ),
+                    "Richardson-extrapolated, nominal parameters",
+                ),
+            ],
+        },
+        {
+            "title": "The test",
+            "rows": [
+                _row(
+                    "Numerical error",
+                    col(lambda q: fmt.with_unit(numerical(q), q.get("unit"), why=WHY_PERCENTILE)),
+                    f"discretisation ({pct_label} over the ensemble) + round-off",
+                    strong=True,
+                ),
+                _row(
+                    "Parameter standard deviation",
+                    col(lambda q: fmt.with_unit(par(q).get("sd"), q.get("unit"), why=WHY_SD)),
+                    "spread of the forecast",
+                ),
+                _row(
+                    "Allowance",
+                    col(lambda q: fmt.with_unit(q.get("allowance"), q.get("unit"), why=WHY_SD)),
+                    f"{share_text} of the standard deviation",
+                    strong=True,
+                ),
+                _row(
+                    "Numerical error ÷ parameter sd",
+                    col(
+                        lambda q: fmt.ratio(
+                            q.get("numerical_to_parameter"), why="error or spread undefined"
+                        )
+                    ),
+                    f"must not exceed {fmt.number(fraction, 3)}",
+                ),
+                _row("Verdict for this quantity", col(_quantity_verdict), strong=True),
+            ],
+        },
+        {
+            "title": "Numerical error in detail",
+            "rows": [
+                _row(
+                    f"Discretisation error, {pct_label}",
+                    col(
+                        lambda q: fmt.with_unit(
+                            disc(q).get("error_percentile"), q.get("unit"), why=WHY_PERCENTILE
+                        )
+                    ),
+                    "over the parameter ensemble",
+                ),
+                _row(
+                    "Discretisation error at nominal parameters",
+                    col(
+                        lambda q: fmt.with_unit(
+                            disc(q).get("error"), q.get("unit"), why="no reference value"
+                        )
+                    ),
+                    "|value − reference|",
+                ),
+                _row(
+                    "Grid convergence index",
+                    col(lambda q: fmt.with_unit(disc(q).get("gci"), q.get("unit"), why=WHY_GCI)),
+                    "Roache, case's step",
+                ),
+                _row("Observed order", col(lambda q: _order(disc(q)))),
+                _row(
+                    "Round-off, measured",
+                    col(
+                        lambda q: fmt.with_unit(
+                            (q.get("roundoff") or {}).get("error"),
+                            q.get("unit"),
+                            why="not measured",
+                        )
+                    ),
+                    "binary64 against a wider type",
+                ),
+                _row(
+                    "Round-off, bound",
+                    col(
+                        lambda q: fmt.with_unit(
+                            (q.get("roundoff") or {}).get("bound"),
+                            q.get("unit"),
+                            why="not computed",
+                        )
+                    ),
+                    "unit round-off × steps × size",
+                ),
+            ],
+        },
+        {
+            "title": "Parameter uncertainty in detail",
+            "rows": [
+                _row(
+                    "Central interval",
+                    col(
+                        lambda q: fmt.interval(
+                            par(q).get("low"),
+                            par(q).get("high"),
+                            q.get("unit"),
+                            par(q).get("level"),
+                            why=WHY_SD,
+                        )
+                    ),
+                ),
+                _row("Largest driver", col(lambda q: _driver(par(q).get("indices")))),
+                _row(
+                    "Combined uncertainty",
+                    col(
+                        lambda q: fmt.with_unit(
+                            q.get("combined"), q.get("unit"), why="a component is undefined"
+                        )
+                    ),
+                    "root-sum-square (ASME V&V 20)",
+                ),
+                _row(
+                    "Shares of the variance",
+                    col(_shares),
+                    "discretisation / round-off / parameters",
+                ),
+            ],
+        },
     ]
 
 
@@ -241,18 +365,27 @@ def _tried(recommendation: dict) -> list[dict]:
     for t in recommendation.get("tried") or []:
         step = t.get("step") or {}
         result = "adequate" if t.get("adequate") else "not adequate"
-        rows.append({"step": fmt.step(step.get("value"), step.get("unit")),
-                     "ratio": fmt.ratio(t.get("worst_ratio"), why=t.get("note") or None),
-                     "artefacts": ", ".join(t.get("artefacts") or []) or "none",
-                     "result": result, "adequate": bool(t.get("adequate"))})
+        rows.append(
+            {
+                "step": fmt.step(step.get("value"), step.get("unit")),
+                "ratio": fmt.ratio(t.get("worst_ratio"), why=t.get("note") or None),
+                "artefacts": ", ".join(t.get("artefacts") or []) or "none",
+                "result": result,
+                "adequate": bool(t.get("adequate")),
+            }
+        )
     half = recommendation.get("half_step_check")
     if half:
         step = half.get("step") or {}
-        rows.append({"step": fmt.step(step.get("value"), step.get("unit")),
-                     "ratio": fmt.ratio(half.get("worst_ratio")),
-                     "artefacts": "(check at half the recommended step)",
-                     "result": "adequate" if half.get("adequate") else "not adequate",
-                     "adequate": bool(half.get("adequate"))})
+        rows.append(
+            {
+                "step": fmt.step(step.get("value"), step.get("unit")),
+                "ratio": fmt.ratio(half.get("worst_ratio")),
+                "artefacts": "(check at half the recommended step)",
+                "result": "adequate" if half.get("adequate") else "not adequate",
+                "adequate": bool(half.get("adequate")),
+            }
+        )
     return rows
 
 
@@ -264,8 +397,11 @@ def _change_cell(item, unit: str | None) -> list[Cell]:
     changed = fmt.with_unit(change, unit, why="a value is missing")
     if change is not None:
         changed = Cell(sign + changed.text)
-    return [fmt.with_unit(item.get("before"), unit, fmt.SIG_VALUE, why="not recorded"),
-            fmt.with_unit(item.get("now"), unit, fmt.SIG_VALUE, why="not recorded"), changed]
+    return [
+        fmt.with_unit(item.get("before"), unit, fmt.SIG_VALUE, why="not recorded"),
+        fmt.with_unit(item.get("now"), unit, fmt.SIG_VALUE, why="not recorded"),
+        changed,
+    ]
 
 
 def _since_last(since: dict | None, quantities: list[dict]) -> dict | None:
@@ -273,9 +409,13 @@ def _since_last(since: dict | None, quantities: list[dict]) -> dict | None:
     if not since:
         return None
     units = {q.get("name"): q.get("unit") for q in quantities}
-    labels = {"value": "value", "reference": "reference", "discretisation":
-              "discretisation error (percentile)", "roundoff": "round-off",
-              "parameter_sd": "parameter sd"}
+    labels = {
+        "value": "value",
+        "reference": "reference",
+        "discretisation": "discretisation error (percentile)",
+        "roundoff": "round-off",
+        "parameter_sd": "parameter sd",
+    }
 
     def pair(entry, show):
         entry = entry if isinstance(entry, dict) else {}
@@ -293,8 +433,7 @@ def _since_last(since: dict | None, quantities: list[dict]) -> dict | None:
         rows = []
         for key, label in labels.items():
             if isinstance(changes, dict) and key in changes:
-                rows.append({"label": label, "cells": _change_cell(changes[key],
-                                                                   units.get(name))})
+                rows.append({"label": label, "cells": _change_cell(changes[key], units.get(name))})
         spread = changes.get("spread") if isinstance(changes, dict) else None
         items.append({"name": name, "rows": rows, "spread": spread})
     return {
@@ -313,19 +452,36 @@ def _fit(fit: dict | None) -> dict | None:
     rows = []
     for name, p in (fit.get("parameters") or {}).items():
         p = p if isinstance(p, dict) else {"value": p}
-        rows.append({"name": name,
-                     "value": fmt.with_unit(p.get("value"), p.get("unit"), fmt.SIG_VALUE),
-                     "sd": fmt.with_unit(p.get("sd"), p.get("unit"),
-                                         why="the curvature at the optimum was not usable")})
+        rows.append(
+            {
+                "name": name,
+                "value": fmt.with_unit(p.get("value"), p.get("unit")),
+                "sd": fmt.with_unit(
+                    p.get("sd"), p.get("unit"), why="the curvature at the optimum was not usable"
+                ),
+            }
+        )
     for name, p in (fit.get("nuisance") or {}).items():
         p = p if isinstance(p, dict) else {"value": p}
-        rows.append({"name": f"{name} (observation model)",
-                     "value": fmt.with_unit(p.get("value"), p.get("unit"), fmt.SIG_VALUE),
-                     "sd": Cell("")})
-    summary = [(label, fmt.scalar(fit.get(key))) for key, label in (
-        ("error", "observation model"), ("n_counts", "counts fitted"),
-        ("converged", "optimiser converged"), ("uncertainty_method", "uncertainty from"),
-        ("loglik", "log-likelihood"), ("aic", "AIC")) if key in fit]
+        rows.append(
+            {
+                "name": f"{name} (observation model)",
+                "value": fmt.with_unit(p.get("value"), p.get("unit"), fmt.SIG_VALUE),
+                "sd": Cell(""),
+            }
+        )
+    summary = [
+        (label, fmt.scalar(fit.get(key)))
+        for key, label in (
+            ("error", "observation model"),
+            ("n_counts", "counts fitted"),
+            ("converged", "optimiser converged"),
+            ("uncertainty_method", "uncertainty from"),
+            ("loglik", "log-likelihood"),
+            ("aic", "AIC"),
+        )
+        if key in fit
+    ]
     return {"parameters": rows, "summary": summary, "message": fit.get("message")}
 
 
@@ -360,10 +516,14 @@ def _provenance(budget: dict) -> list[tuple[str, Cell]]:
     return [
         ("Case file", Cell(case.get("path") or "not recorded")),
         ("Case SHA-256", Cell(case.get("sha256") or "not recorded")),
-        ("Program", Cell(f'{run.get("package", "errbudget")} {run.get("version", "")}'.strip())),
+        ("Program", Cell(f"{run.get('package', 'errbudget')} {run.get('version', '')}".strip())),
         ("Libraries", Cell(", ".join(versions))),
-        ("Run at", Cell(run["timestamp"]) if run.get("timestamp") else
-         Cell(fmt.NOT_AVAILABLE, True, "the run was not made through the command line")),
+        (
+            "Run at",
+            Cell(run["timestamp"])
+            if run.get("timestamp")
+            else Cell(fmt.NOT_AVAILABLE, True, "the run was not made through the command line"),
+        ),
         ("Seed", fmt.scalar(run.get("seed"))),
         ("Base samples (Sobol design)", fmt.scalar(run.get("samples"))),
         ("Parameter sets solved", fmt.scalar(run.get("parameter_sets"))),

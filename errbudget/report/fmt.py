@@ -12,6 +12,7 @@ from dataclasses import dataclass
 
 SIG_VALUE = 4  # significant digits of forecast values and references
 SIG_ERROR = 3  # significant digits of errors, spreads, limits and ratios
+SIG_STEP = 6  # steps and times are exact: enough digits for 0.21875 (7/32)
 GROUP_FROM = 1e4  # numbers at or above this get digit groups (8 400 is easier to read as 8400)
 FIXED_LOW, FIXED_HIGH = 1e-3, 1e6  # outside [FIXED_LOW, FIXED_HIGH) numbers use powers of ten
 THIN_SPACE = "\u202f"  # narrow no-break space: digit groups and number-unit never split
@@ -41,10 +42,11 @@ def finite(value) -> float | None:
     return number if math.isfinite(number) else None
 
 
-def number(value, sig: int = SIG_ERROR, *, trim: bool = False) -> str | None:
-    """``value`` with ``sig`` significant digits: "6.76", "8 400", "2.84 × 10⁻¹⁴"; None if absent.
+def number(value, sig: int = SIG_ERROR) -> str | None:
+    """``value`` to ``sig`` significant digits ("6.76", "8400", "2.84 × 10⁻¹⁴"); None if absent.
 
-    ``trim`` drops trailing zeros (for exact values such as steps: "7", "0.4375").
+    Trailing zeros are dropped, as Python's "g" format does (and as the verdict sentence
+    shows its numbers), so an exact step reads "7", not "7.000".
     """
     x = finite(value)
     if x is None:
@@ -55,38 +57,27 @@ def number(value, sig: int = SIG_ERROR, *, trim: bool = False) -> str | None:
     exponent = math.floor(math.log10(abs(rounded)))
     if FIXED_LOW <= abs(rounded) < FIXED_HIGH:
         decimals = max(sig - 1 - exponent, 0)
-        if trim:
-            decimals = _needed_decimals(x, decimals)
-        text = f"{rounded:,.{decimals}f}"
-        if abs(rounded) >= GROUP_FROM:
-            return text.replace(",", THIN_SPACE)
-        return text.replace(",", "")
-    mantissa = f"{rounded / 10**exponent:.{sig - 1}f}"
-    if trim and "." in mantissa:
-        mantissa = mantissa.rstrip("0").rstrip(".")
+        text = _trim(f"{rounded:,.{decimals}f}")
+        return text.replace(",", THIN_SPACE if abs(rounded) >= GROUP_FROM else "")
+    mantissa = _trim(f"{rounded / 10**exponent:.{sig - 1}f}")
     return f"{mantissa} × 10{str(exponent).translate(_SUPERSCRIPT)}"
 
 
-def _needed_decimals(x: float, at_most: int) -> int:
-    """Fewest decimals (up to ``at_most``, at least enough for exact steps) that show ``x``."""
-    for decimals in range(0, max(at_most, 6) + 1):
-        if abs(round(x, decimals) - x) <= 1e-12 * max(abs(x), 1.0):
-            return decimals
-    return at_most
+def _trim(text: str) -> str:
+    return text.rstrip("0").rstrip(".") if "." in text else text
 
 
-def with_unit(value, unit: str | None, sig: int = SIG_ERROR, *, trim: bool = False,
-              why: str | None = None) -> Cell:
+def with_unit(value, unit: str | None, sig: int = SIG_ERROR, *, why: str | None = None) -> Cell:
     """A number and its unit ("6.76 day"); "not available" with ``why`` when it is missing."""
-    text = number(value, sig, trim=trim)
+    text = number(value, sig)
     if text is None:
         return Cell(NOT_AVAILABLE, True, why)
     return Cell(f"{text}{THIN_SPACE}{unit}" if unit else text)
 
 
 def step(value, unit: str | None, *, why: str | None = None) -> Cell:
-    """An exact step or time ("7 day", "0.4375 day"): trailing zeros dropped."""
-    return with_unit(value, unit, SIG_VALUE + 2, trim=True, why=why)
+    """An exact step or time ("7 day", "0.4375 day"): up to six significant digits."""
+    return with_unit(value, unit, SIG_STEP, why=why)
 
 
 def ratio(value, *, why: str | None = None) -> Cell:
@@ -107,7 +98,7 @@ def percent(value, *, why: str | None = None) -> Cell:
         return Cell(f"<{THIN_SPACE}{SHARE_EDGE:g}{THIN_SPACE}%")
     if 100 - SHARE_EDGE < pct < 100:
         return Cell(f">{THIN_SPACE}{100 - SHARE_EDGE:g}{THIN_SPACE}%")
-    return Cell(f"{number(pct, SIG_ERROR, trim=True)}{THIN_SPACE}%")
+    return Cell(f"{number(pct, SIG_ERROR)}{THIN_SPACE}%")
 
 
 def interval(low, high, unit: str | None, level, *, why: str | None = None) -> Cell:
@@ -116,7 +107,7 @@ def interval(low, high, unit: str | None, level, *, why: str | None = None) -> C
     if lo is None or hi is None:
         return Cell(NOT_AVAILABLE, True, why)
     lvl = finite(level)
-    suffix = f" ({number(100 * lvl, 3, trim=True)}{THIN_SPACE}% central)" if lvl else ""
+    suffix = f" ({number(100 * lvl, 3)}{THIN_SPACE}% central)" if lvl else ""
     return Cell(f"{lo} – {hi}{THIN_SPACE}{unit or ''}".rstrip() + suffix)
 
 
@@ -126,8 +117,10 @@ def scalar(value) -> Cell:
         return Cell(NOT_AVAILABLE, True)
     if isinstance(value, bool):
         return Cell("yes" if value else "no")
-    if isinstance(value, int | float):
-        text = number(value, SIG_VALUE, trim=isinstance(value, int))
+    if isinstance(value, int):
+        return Cell(str(value))  # counts, seeds, sample sizes: exact
+    if isinstance(value, float):
+        text = number(value, SIG_VALUE)
         return Cell(text) if text is not None else Cell(NOT_AVAILABLE, True)
     return Cell(str(value))
 

@@ -38,8 +38,7 @@ def _stylesheet() -> Markup:
     return Markup(css)
 
 
-def render_html(budget: dict, series: dict, case_text: str, *,
-                include_figures: bool = True) -> str:
+def render_html(budget: dict, series: dict, case_text: str, *, include_figures: bool = True) -> str:
     """The HTML budget of one run.
 
     Parameters
@@ -65,8 +64,12 @@ def render_html(budget: dict, series: dict, case_text: str, *,
     if include_figures:
         page["figures"] = figures.all_figures(budget, series)
     else:
-        page["figures"] = [figures.skipped(key, title, "figures were left out of this render")
-                           for key, title in (("budget", "Error budget per quantity"),
-                                              ("forecast", "The forecast over time"))]
+        page["figures"] = [
+            figures.skipped(key, title, "figures were left out of this render")
+            for key, title in (
+                ("budget", "Error budget per quantity"),
+                ("forecast", "The forecast over time"),
+            )
+        ]
     page["css"] = _stylesheet()
     return _environment().get_template(TEMPLATE).render(**page)

@@ -1,0 +1,512 @@
+"""The HTML budget: verdict first and verbatim, self-contained, escaped, printable.
+
+The budget comes from the real pipeline, run once for the module on the crayfish demo case
+with a small Sobol design. The browser tests open the page in a headless Chromium (Debian's
+``chromium`` package); without it they fail when ``CI`` is set and are skipped otherwise.
+"""
+
+from __future__ import annotations
+
+import copy
+import functools
+import http.server
+import json
+import math
+import os
+import re
+import shutil
+import subprocess
+import threading
+from fractions import Fraction
+from html import unescape
+from html.parser import HTMLParser
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+
+import errbudget
+from errbudget.outputs import dumps
+from errbudget.report import render_html
+
+ROOT = Path(__file__).resolve().parents[1]
+CASE = ROOT / "cases" / "crayfish-pond.toml"
+SAMPLES = 64  # a power of two, as the Sobol design needs; small keeps the module fast
+CHROMIUM_TIMEOUT = 60  # [s] per browser call
+EXPECTED_FIGURES = {"budget", "convergence", "forecast", "sobol", "stability", "roundoff"}
+A4_PT = (595.28, 841.89)  # ISO 216 A4, 210 mm x 297 mm in PostScript points (recalled)
+PT_TOLERANCE = 1.0  # [pt] Chromium rounds the page box to whole CSS pixels
+
+
+@pytest.fixture(scope="module")
+def report():
+    case = errbudget.load_case(CASE)
+    budget = errbudget.run_case(case, samples=SAMPLES)
+    data = json.loads(dumps(budget.to_dict()))  # exactly what budget.json holds
+    html = render_html(data, budget.series, case.text)
+    return SimpleNamespace(case=case, budget=budget, data=data, html=html)
+
+
+class Page(HTMLParser):
+    """Collects what the tests look at: tags, link-like attributes, figures, ids, texts."""
+
+    LINK_ATTRIBUTES = {"src", "href", "xlink:href", "srcset", "action", "poster", "background"}
+
+    def __init__(self, html: str):
+        super().__init__(convert_charrefs=True)
+        self.tags: list[str] = []
+        self.links: list[tuple[str, str, str]] = []
+        self.ids: list[str] = []
+        self.figures: list[dict] = []
+        self.titles: dict[str, str] = {}
+        self._figure: dict | None = None
+        self._text_into: list[str] | None = None
+        self._text_depth = 0
+        self.feed(html)
+        self.close()
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        attributes = dict(attrs)
+        for name, value in attrs:
+            if name in self.LINK_ATTRIBUTES:
+                self.links.append((tag, name, value or ""))
+        if "id" in attributes:
+            self.ids.append(attributes["id"])
+        if tag == "figure":
+            self._figure = {"id": attributes.get("id"), "caption": [], "svg": []}
+            self.figures.append(self._figure)
+        elif tag == "svg" and self._figure is not None:
+            self._figure["svg"].append(attributes)
+        elif tag == "figcaption" and self._figure is not None:
+            self._start_text(self._figure["caption"])
+        elif tag == "title" and "id" in attributes:
+            self.titles[attributes["id"]] = ""
+            self._title_id = attributes["id"]
+            self._start_text([])
+        elif self._text_into is not None:
+            self._text_depth += 1
+
+    def _start_text(self, into: list[str]) -> None:
+        self._text_into, self._text_depth = into, 0
+
+    def handle_endtag(self, tag):
+        if self._text_into is not None:
+            if self._text_depth == 0:
+                if tag == "title":
+                    self.titles[self._title_id] = "".join(self._text_into)
+                self._text_into = None
+            else:
+                self._text_depth -= 1
+        if tag == "figure":
+            self._figure = None
+
+    def handle_data(self, data):
+        if self._text_into is not None:
+            self._text_into.append(data)
+
+
+def element_text(html: str, element_id: str) -> str:
+    """Text of the element with ``element_id`` (no same-tag nesting), entities decoded."""
+    match = re.search(rf'<(\w+)[^>]*\bid="{element_id}"[^>]*>(.*?)</\1>', html, flags=re.S)
+    assert match, f"no element with id {element_id}"
+    return unescape(re.sub(r"<[^>]+>", "", match.group(2))).replace("\u202f", " ").strip()
+
+
+# ---------------------------------------------------------------------------------------
+# The answer on the first screen
+
+
+NUMBER = re.compile(r"(?<![\w.])(\d+/\d+|\d+(?:\.\d+)?(?:e[-+]?\d+)?)(%?)")
+
+
+def _matches(text: str, percent: str, value: float) -> bool:
+    """``text`` is ``value`` shown to its own precision (half a unit in its last digit)."""
+    if "/" in text:
+        return Fraction(text) == Fraction(value).limit_denominator(1 << 20)
+    shown = float(text)
+    decimals = len(text.split(".")[1].split("e")[0]) if "." in text else 0
+    exponent = int(text.split("e")[1]) if "e" in text else 0
+    half_unit = 0.5 * 10.0 ** (exponent - decimals)
+    target = 100 * value if percent else value
+    return abs(shown - target) <= half_unit * (1 + 1e-9)
+
+
+def _assign(numbers: list[tuple[str, str]], candidates: list[tuple[str, float]]) -> bool:
+    """Can every number be matched to its own candidate value (a one-to-one assignment)?"""
+    if not numbers:
+        return True
+    (text, percent), rest = numbers[0], numbers[1:]
+    for i, (_, value) in enumerate(candidates):
+        if _matches(text, percent, value) and _assign(rest, candidates[:i] + candidates[i + 1 :]):
+            return True
+    return False
+
+
+def test_verdict_sentence_is_verbatim_and_every_number_is_in_budget_json(report):
+    verdict = report.data["verdict"]
+    reason = verdict["reason"]
+    assert element_text(report.html, "verdict-reason") == reason
+    quoted = re.findall(r'"([^"]*)"', reason)
+    assert quoted == [verdict["binding_quantity"]]  # the quantity's name, numbers and all
+    numbers = NUMBER.findall(re.sub(r'"[^"]*"', '""', reason))
+    binding = next(q for q in report.data["quantities"] if q["name"] == quoted[0])
+    numerical = binding["discretisation"]["error_percentile"] + (
+        binding["roundoff"]["error"] or 0.0
+    )
+    candidates = [
+        ("case's step", report.data["simulation"]["step"]["value"]),
+        ("recommended step", verdict["recommended_step"]["value"]),
+        ("numerical error", numerical),
+        ("times the allowance", binding["numerical_to_parameter"] / verdict["fraction"]),
+        ("allowance fraction", verdict["fraction"]),
+    ]
+    candidates = [(role, v) for role, v in candidates if v is not None]
+    assert len(numbers) >= 4, reason
+    assert _assign(numbers, candidates), (numbers, candidates)
+    assert ("%" in reason) == any(p for _, p in numbers)
+
+
+def test_matching_rejects_a_wrong_number():
+    # The helper of the test above must be able to fail.
+    assert _matches("6.76", "", 6.7624)
+    assert not _matches("6.76", "", 6.77)
+    assert not _matches("7", "", 6.2)
+    assert _matches("10", "%", 0.1)
+    assert _matches("7/16", "", 0.4375)
+    assert not _assign([("7", ""), ("7", "")], [("a", 7.0), ("b", 1.0)])
+
+
+def test_marker_and_recommended_step_are_shown_as_text(report):
+    verdict = report.data["verdict"]
+    marker = element_text(report.html, "answer-marker")
+    assert marker.endswith("NOT ADEQUATE" if not verdict["adequate"] else "ADEQUATE")
+    assert ("NOT" in marker) == (not verdict["adequate"])
+    shown = element_text(report.html, "recommended-step")
+    value, unit = shown.split(" ", 1)
+    assert float(value) == pytest.approx(verdict["recommended_step"]["value"])
+    assert unit == verdict["recommended_step"]["unit"]
+    assert report.html.index("answer-marker") < report.html.index('class="budget"')
+
+
+def _budget_row(html: str, label: str) -> list[str]:
+    row = re.search(rf"<th scope=\"row\">{re.escape(label)}.*?</tr>", html, flags=re.S)
+    assert row, label
+    cells = re.findall(r"<td[^>]*>(.*?)</td>", row.group(0), flags=re.S)
+    return [unescape(re.sub(r"<[^>]+>", "", c)).replace("\u202f", "") for c in cells]
+
+
+@pytest.mark.parametrize(
+    ("label", "get"),
+    [
+        ("Allowance", lambda q: q["allowance"]),
+        ("Parameter standard deviation", lambda q: q["parameter"]["sd"]),
+        (
+            "Numerical error",
+            lambda q: q["discretisation"]["error_percentile"] + (q["roundoff"]["error"] or 0.0),
+        ),
+        ("Value at the case&#39;s step", lambda q: q["value"]),
+    ],
+)
+def test_budget_table_shows_each_quantity_with_its_unit(report, label, get):
+    cells = _budget_row(report.html, label)
+    quantities = report.data["quantities"]
+    assert len(cells) == len(quantities)
+    for cell, q in zip(cells, quantities, strict=True):
+        number, unit = re.fullmatch(r"([-\d.]+)(.*)", cell).groups()
+        assert unit == q["unit"]
+        assert float(number) == pytest.approx(get(q), rel=5e-3)  # 3-4 significant digits
+
+
+# ---------------------------------------------------------------------------------------
+# Self-contained and escaped
+
+
+def test_no_script_and_nothing_loaded_from_elsewhere(report):
+    page = Page(report.html)
+    assert "script" not in page.tags
+    assert "<script" not in report.html.lower()
+    assert page.links, "the parser found no link attribute at all (the icon is one)"
+    for tag, name, value in page.links:
+        assert value.startswith(("data:", "#")), (tag, name, value)
+        assert not re.match(r"\s*(https?:)?//", value)
+    assert "@import" not in report.html
+    assert not re.search(r"url\(\s*['\"]?(?!#|data:)", report.html)
+
+
+def test_ids_are_unique_so_inline_figures_do_not_collide(report):
+    ids = Page(report.html).ids
+    assert len(ids) == len(set(ids))
+
+
+def test_title_with_markup_is_escaped(report, tmp_path):
+    text = CASE.read_text(encoding="utf-8")
+    hostile = "<script>alert(1)</script>"
+    path = tmp_path / "hostile.toml"
+    path.write_text(
+        re.sub(r'^title = ".*"$', f'title = "{hostile}"', text, count=1, flags=re.M),
+        encoding="utf-8",
+    )
+    case = errbudget.load_case(path)
+    assert case.title == hostile
+    budget = errbudget.run_case(case, samples=SAMPLES)
+    html = render_html(budget.to_dict(), budget.series, case.text)
+    assert "<script" not in html.lower()
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
+    assert element_text(html, "case-title") == hostile  # shown as text, not dropped
+
+
+def test_other_user_strings_are_escaped(report):
+    data = copy.deepcopy(report.data)
+    data["quantities"][0]["name"] = '<img src=x onerror="alert(1)">'
+    data["flags"] = [{"code": "<b>x</b>", "message": "</pre><script>alert(2)</script>"}]
+    html = render_html(
+        data, report.budget.series, "</pre><script>alert(3)</script>", include_figures=False
+    )
+    assert "<script" not in html.lower()
+    assert "<img" not in html and "<b>x" not in html
+    assert "&lt;img src=x" in html
+
+
+# ---------------------------------------------------------------------------------------
+# Figures, print stylesheet, optional sections, missing data
+
+
+def test_every_figure_has_caption_and_alt_text(report):
+    page = Page(report.html)
+    assert {f["id"].removeprefix("fig-") for f in page.figures} == EXPECTED_FIGURES
+    for figure in page.figures:
+        assert "".join(figure["caption"]).strip(), figure["id"]
+        (svg,) = figure["svg"][:1]
+        assert svg.get("role") == "img"
+        title = page.titles.get(svg.get("aria-labelledby"), "")
+        assert len(title.strip()) > 20, figure["id"]
+        assert "nan" not in title.lower().split()
+
+
+def test_print_stylesheet(report):
+    style = re.search(r"<style>(.*?)</style>", report.html, flags=re.S).group(1)
+    assert "@media print" in style
+    assert re.search(r"@page\s*{[^}]*size:\s*A4", style)
+    assert "max-width: 180mm" in style  # fits Letter too (215.9 mm - 2 x 15 mm margins)
+    assert style.count("break-inside: avoid") >= 3  # figures, rows, boxes
+
+
+def test_optional_sections_render_when_present(report):
+    absent = report.html
+    for heading in (
+        "Changes since the last run",
+        "Fit to the counts",
+        "Validation against the counts",
+    ):
+        assert heading not in absent
+    data = copy.deepcopy(report.data)
+    name = data["quantities"][0]["name"]
+    data["since_last"] = {
+        "previous_time": "2026-05-01T08:00:00+00:00",
+        "case_changed": False,
+        "counts_changed": True,
+        "verdict": {"before": True, "now": False},
+        "recommended_step": {
+            "before": {"value": 2.0, "unit": "day"},
+            "now": {"value": 1.0, "unit": "day"},
+        },
+        "quantities": {
+            name: {
+                "parameter_sd": {"before": 950.0, "now": 819.0, "change": -131.0},
+                "spread": "narrowed",
+            }
+        },
+    }
+    data["fit"] = {
+        "parameters": {"r": {"value": 0.0612, "sd": 0.0043, "unit": "1 / day"}},
+        "error": "poisson",
+        "n_counts": 14,
+    }
+    data["validation"] = {"E": 123.4, "u_val": 98.7, "unit": "crayfish", "model_form": True}
+    html = render_html(data, report.budget.series, report.case.text, include_figures=False)
+    text = unescape(html).replace("\u202f", " ")
+    for expected in (
+        "Changes since the last run",
+        "2026-05-01T08:00:00+00:00",
+        "narrowed",
+        "adequate → not adequate",
+        "2 day → 1 day",
+        "-131 crayfish",
+        "Fit to the counts",
+        "0.0612 1 / day",
+        "0.0043 1 / day",
+        "poisson",
+        "14",
+        "Validation against the counts",
+        "u_val",
+        "98.7",
+        "model_form",
+    ):
+        assert expected in text, expected
+
+
+def test_missing_and_non_finite_data_do_not_break_the_report(report):
+    data = copy.deepcopy(report.data)
+    for q in data["quantities"]:
+        q["discretisation"].update(error_percentile=None, gci=None, observed_order=None)
+        q["discretisation"]["ladder"] = [
+            {"step": s["step"], "value": None} for s in q["discretisation"]["ladder"]
+        ]
+        q["parameter"]["indices"] = {}
+        q["numerical_to_parameter"] = q["shares"] = q["allowance"] = None
+    for key in ("stable_step", "stable_step_nominal", "monotone_step"):
+        data["stability"][key]["value"] = None
+    data["verdict"]["recommended_step"]["value"] = None
+    series = dict(report.budget.series)
+    band = np.array(series["band"], dtype=float)
+    band[:, ::3] = np.nan
+    band[1, 1] = np.inf
+    series.update(
+        band=band,
+        error_p95=np.full_like(series["error_p95"], np.nan),
+        nominal_coarse=np.where(np.arange(len(series["times"])) % 2, np.inf, 1.0),
+    )
+    html = render_html(data, series, report.case.text)
+    page = Page(html)
+    drawn = {f["id"].removeprefix("fig-") for f in page.figures}
+    assert drawn == {"budget", "forecast", "roundoff"}
+    for key in EXPECTED_FIGURES - drawn:
+        assert re.search(rf'id="fig-{key}"[^>]*>.*?not drawn', html, flags=re.S), key
+    assert "not available" in html
+    assert ">nan<" not in html.lower() and "inf " not in html
+    empty = render_html(report.data, {}, report.case.text)
+    assert re.search(r'id="fig-forecast"[^>]*>.*?not drawn', empty, flags=re.S)
+
+
+def test_provenance_and_cautions(report):
+    text = unescape(report.html)
+    run = report.data["run"]
+    for expected in (
+        report.data["case"]["sha256"],
+        f"errbudget {run['version']}",
+        "numpy",
+        "scipy",
+        "SALib",
+        "pint",
+        "matplotlib",
+        "doi:10.1115/1.2960953",
+        "Roache",
+        "Saltelli",
+        "Sobol",
+        "V&V 20",
+        "May (1976)",
+        "Higham (2002)",
+        "qualified biologists",
+        "demographic stochasticity",
+    ):
+        assert expected in text, expected
+    assert "title = " in element_text(report.html, "case-text")
+
+
+# ---------------------------------------------------------------------------------------
+# In a real browser
+
+
+def _chromium() -> str:
+    found = shutil.which("chromium")
+    if found is None:
+        if os.environ.get("CI"):
+            pytest.fail("chromium is not installed (CI must install Debian's chromium)")
+        pytest.skip("chromium is not installed")
+    return found
+
+
+def _browser(binary: str, profile: Path, *args: str) -> subprocess.CompletedProcess:
+    command = [
+        binary,
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-quic",
+        "--no-first-run",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        f"--user-data-dir={profile}",
+        *args,
+    ]
+    return subprocess.run(command, capture_output=True, timeout=CHROMIUM_TIMEOUT, check=False)
+
+
+@pytest.fixture(scope="module")
+def saved(report, tmp_path_factory):
+    folder = tmp_path_factory.mktemp("report")
+    (folder / "budget.html").write_text(report.html, encoding="utf-8")
+    return folder
+
+
+def test_first_screen_screenshot(saved, tmp_path):
+    from PIL import Image  # matplotlib's own dependency
+
+    binary = _chromium()
+    png = tmp_path / "first-screen.png"
+    result = _browser(
+        binary,
+        tmp_path / "profile",
+        "--hide-scrollbars",
+        f"--screenshot={png}",
+        "--window-size=1280,900",
+        (saved / "budget.html").as_uri(),
+    )
+    assert result.returncode == 0, result.stderr[-2000:]
+    assert png.stat().st_size > 10_000
+    with Image.open(png) as image:
+        assert image.size == (1280, 900)
+        colours = image.convert("RGB").getcolors(maxcolors=1 << 20)
+    assert colours is None or len(colours) > 50  # text and the answer box, not a blank page
+
+
+def test_pdf_print_is_a4(saved, tmp_path):
+    binary = _chromium()
+    pdf = tmp_path / "budget.pdf"
+    result = _browser(
+        binary,
+        tmp_path / "profile",
+        "--no-pdf-header-footer",
+        f"--print-to-pdf={pdf}",
+        (saved / "budget.html").as_uri(),
+    )
+    assert result.returncode == 0, result.stderr[-2000:]
+    content = pdf.read_bytes()
+    assert content.startswith(b"%PDF") and len(content) > 20_000
+    boxes = re.findall(rb"/MediaBox \[0 0 ([\d.]+) ([\d.]+)\]", content)
+    assert len(boxes) >= 2  # several pages
+    for width, height in boxes:
+        assert math.isclose(float(width), A4_PT[0], abs_tol=PT_TOLERANCE)
+        assert math.isclose(float(height), A4_PT[1], abs_tol=PT_TOLERANCE)
+
+
+class _Counting(http.server.SimpleHTTPRequestHandler):
+    def parse_request(self):
+        parsed = super().parse_request()
+        self.server.seen.append((self.command, self.path))
+        return parsed
+
+    def log_message(self, format, *args):  # quiet test output
+        pass
+
+
+def test_page_makes_no_request_but_itself(report, saved, tmp_path):
+    binary = _chromium()
+    handler = functools.partial(_Counting, directory=str(saved))
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), handler)
+    server.seen = []
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    try:
+        url = f"http://127.0.0.1:{server.server_address[1]}/budget.html"
+        result = _browser(binary, tmp_path / "profile", "--dump-dom", url)
+    finally:
+        server.shutdown()
+        server.server_close()
+        thread.join(timeout=5)
+    assert result.returncode == 0, result.stderr[-2000:]
+    assert report.data["verdict"]["reason"].split(",")[0].encode() in result.stdout
+    assert server.seen == [("GET", "/budget.html")]
