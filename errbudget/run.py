@@ -33,6 +33,7 @@ from errbudget.spread import sample_design, sobol_indices, spread_summary
 BYTES_PER_VALUE = 8
 WORK_COPIES = 6  # arrays alive at once per stored trajectory during a level (stages, temporaries)
 BAND_PERCENTILES = (5.0, 50.0, 95.0)
+REFERENCE_DEPTH = 8  # reference step = predicted adequate step / this (candidate, half, margin)
 
 
 @dataclass
@@ -138,14 +139,16 @@ def run_case(
     coarse = solve(case, params, case.step)
     case_values, _ = quantity_values(case, coarse)
     say("ensemble on the finest ladder levels")
-    finer = solve(case, params, steps[-2])
-    finest = solve(case, params, steps[-1])
-    finer_values, _ = quantity_values(case, finer)
-    finest_values, _ = quantity_values(case, finest)
-    reference = richardson(finest_values, finer_values, ladder.RATIO, scheme.order)
+    finer, finest, reference = _reference_levels(case, params, steps[-2], steps[-1], scheme)
     errors = discretisation_errors(case, case_values, reference)
+    iid = design.independent_rows if design is not None else np.array([0])
+    deeper = _deeper_reference(case, errors, reference, iid, scheme.order, finest.step, rows, flags)
+    if deeper is not None:
+        say("refining the reference for a fine step")
+        finer, finest, reference = _reference_levels(case, params, 2 * deeper, deeper, scheme)
+        errors = discretisation_errors(case, case_values, reference)
 
-    stride = ladder.RATIO ** (len(steps) - 1)
+    stride = round(case.step / finest.step)
     fine_on_case_grid = finest.states[::stride][: coarse.states.shape[0]]
     law = {k: v for k, v in params.items() if k != "N0"}
     levels = [eq.value for eq in stable_equilibria(case.model, law)]
@@ -153,7 +156,6 @@ def run_case(
     flags.extend(artefacts.flags(masks, f"at the case's step of {case.step:g} {case.time_unit}"))
 
     say("parameter spread and Sobol indices")
-    iid = design.independent_rows if design is not None else np.array([0])
     spreads, indices = [], []
     for q in range(len(case.quantities)):
         spreads.append(spread_summary(reference[q, iid], case.budget.level))
@@ -169,7 +171,7 @@ def run_case(
 
     say("searching for the coarsest adequate step")
     recommendation = recommend(
-        case, params, reference, finest, stride_of=steps[-1], spreads=spreads, limits=limits
+        case, params, reference, finest, stride_of=finest.step, spreads=spreads, limits=limits
     )
     series = _series(case, coarse, finest, stride, iid, errors)
     elapsed = time.perf_counter() - started
@@ -194,6 +196,10 @@ def run_case(
         elapsed=elapsed,
         series=series,
     )
+    data["run"]["reference_steps"] = [
+        {"value": finer.step, "unit": case.time_unit},
+        {"value": finest.step, "unit": case.time_unit},
+    ]
     if case.counts is not None and fit is not None:
         from errbudget.validation import validate_run
 
@@ -201,6 +207,63 @@ def run_case(
         if data["validation"]["flag"] is not None:
             data["flags"].append(data["validation"]["flag"])
     return Budget(data, series)
+
+
+def _reference_levels(case: Case, params, finer_step: float, finest_step: float, scheme):
+    """Ensemble runs on two levels (ratio 2) and the per-member Richardson reference."""
+    finer = solve(case, params, finer_step)
+    finest = solve(case, params, finest_step)
+    finer_values, _ = quantity_values(case, finer)
+    finest_values, _ = quantity_values(case, finest)
+    reference = richardson(finest_values, finer_values, ladder.RATIO, scheme.order)
+    return finer, finest, reference
+
+
+def _deeper_reference(
+    case: Case, errors, reference, iid, order: int, finest: float, rows: int, flags: list[dict]
+) -> float | None:
+    """A finer reference step when the adequate step is likely below the ladder's reach.
+
+    The adequate step is predicted from the case-step error, e(h) ~ e(h0) (h/h0)^p; the
+    reference must be REFERENCE_DEPTH times finer so that the candidate and its half are both
+    well resolved. Returns None when the ladder already reaches that far.
+    """
+    needed = math.inf
+    for q in range(errors.shape[0]):
+        finite = np.isfinite(errors[q])
+        if not finite.all():
+            continue
+        error = float(np.percentile(errors[q], case.budget.percentile))
+        values = reference[q, iid]
+        values = values[np.isfinite(values)]
+        sd = float(np.std(values, ddof=1)) if values.size > 1 else 0.0
+        if error > 0 and sd > 0:
+            ratio = case.budget.fraction * sd / error
+            needed = min(needed, case.step * ratio ** (1.0 / order))
+    if not math.isfinite(needed):
+        return None
+    target = needed / REFERENCE_DEPTH
+    levels = max(0, math.ceil(math.log2(case.step / target)))
+    step = case.step / ladder.RATIO**levels
+    if step >= finest * (1 - 1e-12):
+        return None
+    while step < finest and (
+        n_steps_for(case.horizon, step) > ladder.MAX_STEPS
+        or estimate_memory_mb(case, rows, step) > case.budget.memory_limit_mb
+    ):
+        step *= ladder.RATIO
+    if step >= finest * (1 - 1e-12):
+        flags.append(
+            {
+                "code": "reference-capped",
+                "message": (
+                    "the adequate step looks finer than the reference levels that the step and "
+                    "memory caps allow; the recommendation may not reach it"
+                ),
+            }
+        )
+        return None
+    return step
 
 
 def discretisation_errors(case: Case, values: np.ndarray, reference: np.ndarray) -> np.ndarray:

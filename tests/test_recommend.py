@@ -1,0 +1,94 @@
+"""The recommended step on a case whose true error is known: explicit Euler, logistic law.
+
+The exact logistic solution N(t) = K / (1 + (K/N0 - 1) exp(-r t)) (Verhulst 1838) gives the
+true discretisation error of every member of the ensemble at any step, so the recommendation
+can be checked against the truth rather than against errbudget's own estimate.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+import errbudget
+from errbudget.ensemble import ensemble_params, quantity_values, solve
+from errbudget.spread import sample_design
+
+CASE = """
+title = "Known-answer check: logistic growth, explicit Euler"
+
+[model]
+form = "logistic"
+unit = "fish"
+
+[parameters]
+r  = { value = "0.2 / day", sd = "0.02 / day" }
+K  = { value = "1000 fish", sd = "50 fish" }
+N0 = "50 fish"
+
+[simulation]
+scheme = "euler"
+step = "2 day"
+horizon = "40 day"
+
+[[quantity]]
+name = "fish on day 20"
+kind = "value"
+at = "20 day"
+
+[budget]
+fraction = 0.1
+samples = 256
+seed = 5
+"""
+
+
+@pytest.fixture(scope="module")
+def known():
+    folder = pytest.importorskip("pathlib").Path(__file__).parent / "_recommend_case"
+    folder.mkdir(exist_ok=True)
+    path = folder / "logistic-euler.toml"
+    path.write_text(CASE, encoding="utf-8")
+    case = errbudget.load_case(path)
+    data = errbudget.run_case(case).to_dict()
+    path.unlink()
+    folder.rmdir()
+    return case, data
+
+
+def _true_ratio(case, step: float) -> float:
+    """95th-percentile true error over the design / sd of the exact values."""
+    design = sample_design(case.uncertain(), None, case.budget.samples, case.budget.seed)
+    params = ensemble_params(case, design.values)
+    values, _ = quantity_values(case, solve(case, params, step))
+    law = {k: v for k, v in params.items() if k != "N0"}
+    at = case.quantities[0].at
+    exact = case.model.exact(at, params["N0"], law)
+    error = np.percentile(np.abs(values[0] - exact), case.budget.percentile)
+    spread = np.std(exact[design.independent_rows], ddof=1)
+    return float(error / spread)
+
+
+def test_recommended_step_meets_the_rule_against_the_exact_solution(known):
+    case, data = known
+    step = data["verdict"]["recommended_step"]["value"]
+    assert step is not None
+    # The rule of DESIGN.md: numerical error at the 95th percentile <= fraction x spread.
+    assert _true_ratio(case, step) <= case.budget.fraction
+
+
+def test_next_coarser_candidate_fails_the_rule_against_the_exact_solution(known):
+    case, data = known
+    step = data["verdict"]["recommended_step"]["value"]
+    tried = [t["step"]["value"] for t in data["recommendation"]["tried"]]
+    coarser = [s for s in tried if s > step]
+    assert coarser, "the search must have tried steps coarser than the recommendation"
+    next_coarser = min(coarser)
+    assert _true_ratio(case, next_coarser) > case.budget.fraction
+
+
+def test_half_of_the_recommended_step_was_checked(known):
+    _, data = known
+    half = data["recommendation"]["half_step_check"]
+    assert half["step"]["value"] == pytest.approx(data["verdict"]["recommended_step"]["value"] / 2)
+    assert half["adequate"] is True
