@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import stats
@@ -101,6 +101,7 @@ def run_case(
         joint = joint_from_fit(fit, flags)
         if joint is not None:
             independent = {k: v for k, v in independent.items() if k not in joint.names}
+            case = with_fitted_nominal(case, fit)
 
     say("choosing the refinement ladder")
     steps_info = ladder.build(case)
@@ -223,6 +224,16 @@ def run_case(
         if data["validation"]["flag"] is not None:
             data["flags"].append(data["validation"]["flag"])
     return Budget(data, series)
+
+
+def with_fitted_nominal(case: Case, fit) -> Case:
+    """The case with its fitted parameters' nominal values set to the estimates."""
+    estimates = dict(zip(fit.result.names, fit.result.values, strict=True))
+    parameters = {
+        name: replace(p, nominal=float(estimates[name])) if name in estimates else p
+        for name, p in case.parameters.items()
+    }
+    return replace(case, parameters=parameters)
 
 
 def _better_data(

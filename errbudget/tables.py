@@ -1,0 +1,77 @@
+"""CSV companions of budget.json, so the numbers can go straight into a spreadsheet."""
+
+from __future__ import annotations
+
+import csv
+import io
+
+
+def _csv(header: list[str], rows: list[list]) -> str:
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(header)
+    for row in rows:
+        writer.writerow(["" if value is None else value for value in row])
+    return buffer.getvalue()
+
+
+def ladder_csv(budget: dict) -> str:
+    """One row per quantity and ladder level: step and value at nominal parameters."""
+    time_unit = budget["simulation"]["step"]["unit"]
+    rows = []
+    for q in budget["quantities"]:
+        for level in q["discretisation"]["ladder"]:
+            rows.append([q["name"], level["step"], time_unit, level["value"], q["unit"]])
+    return _csv(["quantity", "step", "step_unit", "value", "value_unit"], rows)
+
+
+def summary_csv(budget: dict) -> str:
+    """One row per quantity: the budget components, the spread and the verdict."""
+    rows = []
+    for q in budget["quantities"]:
+        d, p = q["discretisation"], q["parameter"]
+        rows.append(
+            [
+                q["name"],
+                q["unit"],
+                q["value"],
+                q["reference"],
+                d["error"],
+                d["error_percentile"],
+                d["percentile"],
+                d["gci"],
+                d["observed_order"],
+                d["behaviour"],
+                q["roundoff"]["error"],
+                p["mean"],
+                p["sd"],
+                p["low"],
+                p["high"],
+                p["level"],
+                q["numerical_to_parameter"],
+                q["allowance"],
+                q["adequate"],
+            ]
+        )
+    header = [
+        "quantity",
+        "unit",
+        "value_at_case_step",
+        "reference",
+        "richardson_error",
+        "discretisation_error_at_percentile",
+        "percentile",
+        "gci",
+        "observed_order",
+        "behaviour",
+        "roundoff_error",
+        "ensemble_mean",
+        "parameter_sd",
+        "interval_low",
+        "interval_high",
+        "interval_level",
+        "numerical_to_parameter",
+        "allowance",
+        "adequate",
+    ]
+    return _csv(header, rows)
