@@ -150,6 +150,12 @@ def clean(value):
     return value
 
 
+def _difference(a, b) -> float | None:
+    """|a - b|, or None when either is not finite (a diverged run)."""
+    a, b = float(a), float(b)
+    return abs(a - b) if math.isfinite(a) and math.isfinite(b) else None
+
+
 def _number(value) -> float | None:
     value = float(value) if value is not None else math.nan
     return value if math.isfinite(value) else None
@@ -228,8 +234,8 @@ def assemble(
                 "roundoff": {
                     "error": round_error,
                     "bound": _number(rounding["bound"][q]),
-                    "float32_difference": _number(
-                        abs(rounding["float32"][q] - rounding["float64"][q])
+                    "float32_difference": _difference(
+                        rounding["float32"][q], rounding["float64"][q]
                     ),
                     "method": rounding["method"],
                     **_curve_block(rounding, q, scheme.order, unit, case.time_unit),
