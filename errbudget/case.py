@@ -439,8 +439,20 @@ def _custom_model(reader, rate_text, table, population, time_unit):
     def d_dn(t, n, p):
         return expression.d_dN(t * t_factor, n * n_factor, coherent(p)) * (out_factor * n_factor)
 
+    coherent_form = {
+        "expression": expression,
+        "factors": factors,
+        "t_factor": t_factor,
+        "n_factor": n_factor,
+        "out_factor": out_factor,
+    }
     model = models.GrowthModel(
-        "custom", f"dN/dt = {rate_text}", {n: "custom" for n in allowed}, rate, d_dn
+        "custom",
+        f"dN/dt = {rate_text}",
+        {n: "custom" for n in allowed},
+        rate,
+        d_dn,
+        coherent=coherent_form,
     )
     return model, parameters
 

@@ -2,9 +2,9 @@
 
 :func:`errbudget.schemes.integrate` (numpy, vectorised over the ensemble) stays the
 reference implementation and the path for float32 / long double round-off runs. This module
-gives the same states for binary64 runs, one sample block per thread (numba ``prange``), so
-both cores are used; each member's arithmetic is the same whatever the thread count, so a
-parallel run equals a single-core run bit for bit.
+gives the same states for binary64 runs. The kernels release the GIL and each thread fills
+its own columns (members) of the output, so both cores are used; each member's arithmetic is
+the same whatever the thread count, so a parallel run equals a single-core run bit for bit.
 
 Built-in laws are compiled from their expression in :data:`errbudget.models.RATE_TEXT`,
 custom laws from the checked tree of their :class:`~errbudget.expr.RateExpression`, through
@@ -15,7 +15,6 @@ the same whitelist. Without numba, :func:`kernel_for` returns None and the calle
 from __future__ import annotations
 
 import importlib.util
-import inspect
 import os
 import sys
 from collections.abc import Mapping
@@ -70,26 +69,19 @@ def rate_spec(model) -> RateSpec | None:
         return RateSpec(tree, tuple(names), (1.0,) * len(names))
     if model.form != "custom":
         return None
-    # The custom law is a closure built by case.py around its RateExpression and the factors
-    # to pint's coherent root units; read them back rather than parsing anything again.
-    try:
-        outer = inspect.getclosurevars(model.rate).nonlocals
-        expression = outer["expression"]
-        inner = inspect.getclosurevars(outer["coherent"]).nonlocals
-        factors = inner["factors"]
-        if not isinstance(expression, expr.RateExpression):
-            return None
-        names = tuple(sorted(factors))
-        return RateSpec(
-            expression.tree,
-            names,
-            tuple(float(factors[name]) for name in names),
-            float(outer["t_factor"]),
-            float(outer["n_factor"]),
-            float(outer["out_factor"]),
-        )
-    except (KeyError, TypeError, ValueError):
+    form = model.coherent
+    if not form or not isinstance(form.get("expression"), expr.RateExpression):
         return None
+    factors = form["factors"]
+    names = tuple(sorted(factors))
+    return RateSpec(
+        form["expression"].tree,
+        names,
+        tuple(float(factors[name]) for name in names),
+        float(form["t_factor"]),
+        float(form["n_factor"]),
+        float(form["out_factor"]),
+    )
 
 
 def kernel_for(spec: RateSpec, scheme: Scheme):

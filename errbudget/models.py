@@ -79,6 +79,9 @@ class GrowthModel:
     d_dn: Callable[[float, Array, Params], Array]
     equilibria: Callable[[Params], list[Equilibrium]] = field(default=lambda p: [])
     exact: Callable[[Array, Array, Params], Array] | None = None
+    # Custom laws only: the checked expression and its factors to coherent root units
+    # (keys expression, factors, t_factor, n_factor, out_factor), for the compiled engine.
+    coherent: dict | None = None
 
     @property
     def parameter_names(self) -> tuple[str, ...]:

@@ -150,7 +150,11 @@ def test_without_numba_solve_falls_back_to_numpy(monkeypatch):
     traj = ensemble.solve(case, params, case.step)
     law = {k: v for k, v in params.items() if k != "N0"}
     want = integrate(
-        case.model.rate, params["N0"], law, case.step, traj.states.shape[0] - 1,
+        case.model.rate,
+        params["N0"],
+        law,
+        case.step,
+        traj.states.shape[0] - 1,
         SCHEMES[case.scheme],
     )
     np.testing.assert_array_equal(traj.states, want)

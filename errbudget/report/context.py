@@ -8,7 +8,7 @@ from __future__ import annotations
 import platform
 from importlib import metadata
 
-from errbudget.report import fmt
+from errbudget.report import fmt, sections
 from errbudget.report.fmt import Cell
 
 QUESTION = (
@@ -21,7 +21,6 @@ KIND_WORDS = {
     "minimum": "lowest value",
 }
 LIBRARIES = ("numpy", "scipy", "SALib", "pint", "matplotlib", "Jinja2")
-LIST_SHOWN = 8  # lists longer than this are summarised in generic tables, not printed whole
 WHY_PERCENTILE = "some ensemble members diverged or never reached the level"
 WHY_GCI = "the order observed on the three coarsest levels is not trusted"
 WHY_SD = "the parameter spread is undefined"
@@ -115,10 +114,10 @@ def build(budget: dict, case_text: str) -> dict:
             {"code": f.get("code", ""), "message": f.get("message", "")}
             for f in budget.get("flags") or []
         ],
-        "since_last": _since_last(budget.get("since_last"), quantities),
-        "fit": _fit(budget.get("fit")),
-        "validation": _generic(budget.get("validation")),
-        "tried": _tried(budget.get("recommendation") or {}),
+        "since_last": sections.changes(budget.get("since_last"), quantities),
+        "fit": sections.fit_summary(budget.get("fit")),
+        "validation": sections.validation(budget.get("validation")),
+        "tried": sections.step_search(budget.get("recommendation") or {}),
         "provenance": _provenance(budget),
         "ladder": ", ".join(
             fmt.step(s.get("value"), None).text
@@ -358,150 +357,6 @@ def _shares(q: dict) -> Cell:
         return Cell(fmt.NOT_AVAILABLE, True, "a component is undefined")
     parts = [fmt.percent(shares.get(k)).text for k in ("discretisation", "roundoff", "parameter")]
     return Cell(" / ".join(parts))
-
-
-def _tried(recommendation: dict) -> list[dict]:
-    rows = []
-    for t in recommendation.get("tried") or []:
-        step = t.get("step") or {}
-        result = "adequate" if t.get("adequate") else "not adequate"
-        rows.append(
-            {
-                "step": fmt.step(step.get("value"), step.get("unit")),
-                "ratio": fmt.ratio(t.get("worst_ratio"), why=t.get("note") or None),
-                "artefacts": ", ".join(t.get("artefacts") or []) or "none",
-                "result": result,
-                "adequate": bool(t.get("adequate")),
-            }
-        )
-    half = recommendation.get("half_step_check")
-    if half:
-        step = half.get("step") or {}
-        rows.append(
-            {
-                "step": fmt.step(step.get("value"), step.get("unit")),
-                "ratio": fmt.ratio(half.get("worst_ratio")),
-                "artefacts": "(check at half the recommended step)",
-                "result": "adequate" if half.get("adequate") else "not adequate",
-                "adequate": bool(half.get("adequate")),
-            }
-        )
-    return rows
-
-
-def _change_cell(item, unit: str | None) -> list[Cell]:
-    if not isinstance(item, dict):
-        return [fmt.scalar(item), Cell(""), Cell("")]
-    change = fmt.finite(item.get("change"))
-    sign = "+" if change is not None and change > 0 else ""
-    changed = fmt.with_unit(change, unit, why="a value is missing")
-    if change is not None:
-        changed = Cell(sign + changed.text)
-    return [
-        fmt.with_unit(item.get("before"), unit, fmt.SIG_VALUE, why="not recorded"),
-        fmt.with_unit(item.get("now"), unit, fmt.SIG_VALUE, why="not recorded"),
-        changed,
-    ]
-
-
-def _since_last(since: dict | None, quantities: list[dict]) -> dict | None:
-    """The comparison with the previous run (history.compare), robust to missing keys."""
-    if not since:
-        return None
-    units = {q.get("name"): q.get("unit") for q in quantities}
-    labels = {
-        "value": "value",
-        "reference": "reference",
-        "discretisation": "discretisation error (percentile)",
-        "roundoff": "round-off",
-        "parameter_sd": "parameter sd",
-    }
-
-    def pair(entry, show):
-        entry = entry if isinstance(entry, dict) else {}
-        return show(entry.get("before")), show(entry.get("now"))
-
-    def verdict_word(v):
-        return "not recorded" if v is None else ("adequate" if v else "not adequate")
-
-    def step_text(v):
-        v = v or {}
-        return fmt.step(v.get("value"), v.get("unit"), why="none qualified").text
-
-    items = []
-    for name, changes in (since.get("quantities") or {}).items():
-        rows = []
-        for key, label in labels.items():
-            if isinstance(changes, dict) and key in changes:
-                rows.append({"label": label, "cells": _change_cell(changes[key], units.get(name))})
-        spread = changes.get("spread") if isinstance(changes, dict) else None
-        items.append({"name": name, "rows": rows, "spread": spread})
-    return {
-        "previous_time": since.get("previous_time") or "not recorded",
-        "case_changed": fmt.scalar(since.get("case_changed")).text,
-        "counts_changed": fmt.scalar(since.get("counts_changed")).text,
-        "verdict": pair(since.get("verdict"), verdict_word),
-        "recommended": pair(since.get("recommended_step"), step_text),
-        "quantities": items,
-    }
-
-
-def _fit(fit: dict | None) -> dict | None:
-    if not fit:
-        return None
-    rows = []
-    for name, p in (fit.get("parameters") or {}).items():
-        p = p if isinstance(p, dict) else {"value": p}
-        rows.append(
-            {
-                "name": name,
-                "value": fmt.with_unit(p.get("value"), p.get("unit")),
-                "sd": fmt.with_unit(
-                    p.get("sd"), p.get("unit"), why="the curvature at the optimum was not usable"
-                ),
-            }
-        )
-    for name, p in (fit.get("nuisance") or {}).items():
-        p = p if isinstance(p, dict) else {"value": p}
-        rows.append(
-            {
-                "name": f"{name} (observation model)",
-                "value": fmt.with_unit(p.get("value"), p.get("unit"), fmt.SIG_VALUE),
-                "sd": Cell(""),
-            }
-        )
-    summary = [
-        (label, fmt.scalar(fit.get(key)))
-        for key, label in (
-            ("error", "observation model"),
-            ("n_counts", "counts fitted"),
-            ("converged", "optimiser converged"),
-            ("uncertainty_method", "uncertainty from"),
-            ("loglik", "log-likelihood"),
-            ("aic", "AIC"),
-        )
-        if key in fit
-    ]
-    return {"parameters": rows, "summary": summary, "message": fit.get("message")}
-
-
-def _generic(data: dict | None, prefix: str = "") -> list[tuple[str, Cell]] | None:
-    """Any nested dict as (dotted key, value) rows; long lists summarised."""
-    if not data:
-        return None
-    rows: list[tuple[str, Cell]] = []
-    for key, value in data.items():
-        label = f"{prefix}{key}"
-        if isinstance(value, dict):
-            rows.extend(_generic(value, label + " › ") or [(label, Cell("(empty)"))])
-        elif isinstance(value, list):
-            if len(value) <= LIST_SHOWN and all(not isinstance(v, dict | list) for v in value):
-                rows.append((label, Cell(", ".join(fmt.scalar(v).text for v in value))))
-            else:
-                rows.append((label, Cell(f"{len(value)} entries (see budget.json)")))
-        else:
-            rows.append((label, fmt.scalar(value)))
-    return rows
 
 
 def _provenance(budget: dict) -> list[tuple[str, Cell]]:

@@ -1,71 +1,41 @@
-"""The report's figures: matplotlib on the Agg canvas, written as inline SVG strings.
+"""The report's figures, written as inline SVG strings.
 
-Each builder takes budget.json (and the run's ``series``) and returns a :class:`Figure`
-with its SVG, alt text and caption, or with ``svg=None`` and a one-line note when its data
-are missing. Non-finite numbers are masked before plotting, never passed to matplotlib.
-
-The figures use the object-oriented API (``matplotlib.figure.Figure`` with an explicit
-``FigureCanvasAgg``): nothing is registered with pyplot, the global backend of a host
-program is left alone, and each figure is cleared once written.
+Each builder takes budget.json (and the run's ``series``) and returns a
+:class:`~errbudget.report.plotting.Figure` with its SVG, alt text and caption, or with
+``svg=None`` and a one-line note when its data are missing. Non-finite numbers are masked
+before plotting, never passed to matplotlib.
 """
 
 from __future__ import annotations
 
-import io
 import math
-import re
 from collections.abc import Callable
-from dataclasses import dataclass
 
 import matplotlib
 import numpy as np
-from markupsafe import Markup, escape
-from matplotlib import ticker
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure as MplFigure
 
 from errbudget.report.fmt import finite, number, plain
 from errbudget.report.fmt import step as step_text
-
-# Okabe & Ito (2008), "Color Universal Design": distinguishable with the common colour-vision
-# deficiencies. Every series is also labelled, so no reading depends on colour alone.
-BLUE, ORANGE, VERMILLION = "#0072B2", "#E69F00", "#D55E00"
-SKY, GREEN, PURPLE, INK = "#56B4E9", "#009E73", "#CC79A7", "#22303a"
-GRID = "#d9dee2"
-WIDTH_IN = 6.9  # figure width [in]: inside the 180 mm print column, so print is at scale 1
-PANEL_IN = 1.45  # height of one per-quantity bar panel [in]
-LOG_SPAN = 20.0  # bar values spanning more than this factor are drawn on a log axis
-LOG_TICKS = 8  # at most about this many labelled ticks on a log axis
-_RC = {
-    "svg.fonttype": "none",  # text stays text: selectable, searchable, small
-    "svg.hashsalt": "errbudget",  # deterministic ids: the same budget gives the same file
-    "font.family": "sans-serif",
-    "font.size": 8.5,
-    "axes.edgecolor": "#6b7780",
-    "axes.labelcolor": INK,
-    "axes.titlesize": 9,
-    "axes.titleweight": "bold",
-    "axes.titlelocation": "left",
-    "xtick.color": INK,
-    "ytick.color": INK,
-    "text.color": INK,
-    "axes.spines.top": False,
-    "axes.spines.right": False,
-    "legend.frameon": False,
-    "legend.fontsize": 7.5,
-}
-
-
-@dataclass(frozen=True)
-class Figure:
-    """One figure of the report: inline SVG (ours, trusted), alt text and caption."""
-
-    key: str
-    title: str
-    caption: str
-    alt: str
-    svg: Markup | None = None
-    note: str | None = None
+from errbudget.report.plotting import (
+    BLUE,
+    GREEN,
+    GRID,
+    INK,
+    ORANGE,
+    PANEL_IN,
+    PURPLE,
+    RC,
+    SKY,
+    VERMILLION,
+    Figure,
+    bar_panel,
+    clean,
+    new_figure,
+    plain_ticks,
+    quantity_title,
+    skipped,
+    to_svg,
+)
 
 
 def all_figures(budget: dict, series: dict | None) -> list[Figure]:
@@ -98,132 +68,6 @@ def all_figures(budget: dict, series: dict | None) -> list[Figure]:
     return figures
 
 
-def skipped(key: str, title: str, note: str) -> Figure:
-    return Figure(key, title, caption="", alt="", note=note)
-
-
-def to_svg(fig: MplFigure, key: str, alt: str) -> Markup:
-    """Serialise ``fig`` as inline SVG with role="img", a <title> and ids unique to ``key``."""
-    buffer = io.StringIO()
-    try:
-        fig.savefig(
-            buffer, format="svg", bbox_inches="tight", pad_inches=0.04, metadata={"Date": None}
-        )
-    finally:
-        fig.clear()
-    text = buffer.getvalue()
-    text = text[text.index("<svg") :]
-    text = re.sub(r"<metadata>.*?</metadata>", "", text, flags=re.S)
-    text = re.sub(r"<style[^>]*>.*?</style>", "", text, flags=re.S)  # would leak into the page
-    text = re.sub(r'\sid="([^"]+)"', rf' id="{key}-\1"', text)
-    text = re.sub(r"url\(#([^)]+)\)", rf"url(#{key}-\1)", text)
-    text = re.sub(r'href="#([^"]+)"', rf'href="#{key}-\1"', text)
-    head_end = text.index(">") + 1
-    head = re.sub(r'\s(width|height)="[^"]*"', "", text[:head_end])
-    head = head[:-1] + f' role="img" aria-labelledby="{key}-title" class="chart">'
-    title = f'<title id="{key}-title">{escape(alt)}</title>'
-    return Markup(head + title + text[head_end:])
-
-
-def _new(height: float, rows: int = 1, cols: int = 1, **kwargs):
-    fig = MplFigure(figsize=(WIDTH_IN, height))
-    FigureCanvasAgg(fig)  # the Agg canvas, set explicitly for this figure only
-    axes = fig.subplots(rows, cols, squeeze=False, **kwargs)
-    return fig, axes
-
-
-def _quantity_title(q: dict) -> str:
-    return f"{q.get('name', 'quantity')} [{q.get('unit', '')}]"
-
-
-def _positive(values) -> list[float]:
-    return [v for v in (finite(x) for x in values) if v is not None and v > 0]
-
-
-def _tick_text(value, _position=None) -> str:
-    """Tick labels as plain text (no mathtext: faster, and it reads like the tables)."""
-    text = number(value, 3) or ""
-    return text.removeprefix("1 × ")  # a bare power of ten reads "10⁻¹²", not "1 × 10⁻¹²"
-
-
-def _plain_ticks(ax, axis: str = "both", log_subs: tuple = (1.0,)) -> None:
-    """Plain-number tick labels; on log axes majors at ``log_subs`` x 10^k, minors unlabelled."""
-    for name in ("x", "y") if axis == "both" else (axis,):
-        target = ax.xaxis if name == "x" else ax.yaxis
-        if target.get_scale() == "log":
-            target.set_major_locator(ticker.LogLocator(base=10, subs=log_subs, numticks=LOG_TICKS))
-            target.set_minor_locator(ticker.NullLocator())  # unlabelled minors: slow, little use
-        target.set_major_formatter(ticker.FuncFormatter(_tick_text))
-
-
-def _bar_panel(
-    ax,
-    labels: list[str],
-    values: list,
-    colors: list[str],
-    unit: str,
-    notes: dict[int, str],
-    scale: list | None = None,
-    log: bool | None = None,
-    label: Callable[[float], str] = plain,
-) -> None:
-    """Horizontal bars with their value written beside them.
-
-    The axis spans the ``scale`` values (default: all); it is logarithmic when they span more
-    than LOG_SPAN (or as ``log`` says). A value too small to see on that axis is written as
-    text instead of drawn, so the bars that matter keep a readable, honest length.
-    """
-    reach = _positive(values if scale is None else scale) or _positive(values)
-    if log is None:
-        log = bool(reach) and max(reach) / min(reach) > LOG_SPAN
-    if log and reach:
-        low, high = min(reach) / 4, max(reach) * 12
-        ax.set_xscale("log")
-    else:
-        low, high = 0.0, (max(reach) * 1.3 if reach else 1.0)
-    ax.set_xlim(low, high)
-    visible = low if log else 0.004 * high  # below this a bar would be a hairline or off-axis
-    rows = np.arange(len(labels))[::-1]
-    left = low if log else 0.0
-    for index, (row, value, color) in enumerate(zip(rows, values, colors, strict=True)):
-        v = finite(value)
-        if v is not None and v > visible:
-            ax.barh(
-                row, v - left, left=left, height=0.62, color=color, edgecolor=INK, linewidth=0.4
-            )
-            ax.text(
-                v * 1.1 if log else v + 0.01 * high,
-                row,
-                f" {label(v)} {unit}",
-                va="center",
-                fontsize=7.5,
-            )
-            continue
-        if index in notes:
-            text = notes[index]
-        elif v is None:
-            text = "not available"
-        elif v == 0:
-            text = f"0 {unit}"
-        else:
-            text = f"{plain(v)} {unit} (too small to draw on this axis)"
-        ax.text(
-            low * 1.15 if log else 0.01 * high,
-            row,
-            text,
-            va="center",
-            fontsize=7.5,
-            style="italic",
-            color="#4d5a63",
-            bbox={"facecolor": "white", "edgecolor": "none", "pad": 1.0},
-        )
-    ax.set_yticks(rows, labels)
-    ax.tick_params(axis="y", length=0)
-    ax.grid(axis="x", color=GRID, linewidth=0.6)
-    ax.set_axisbelow(True)
-    _plain_ticks(ax, "x")
-
-
 def budget_bars(budget: dict) -> Figure:
     """Discretisation error (ensemble percentile), round-off and parameter sd per quantity."""
     key, title = "budget", "Error budget per quantity"
@@ -231,8 +75,8 @@ def budget_bars(budget: dict) -> Figure:
     if not quantities:
         return skipped(key, title, "no quantities in the budget")
     fraction = finite(budget.get("verdict", {}).get("fraction"))
-    with matplotlib.rc_context(_RC):
-        fig, axes = _new(0.5 + PANEL_IN * len(quantities), len(quantities), 1)
+    with matplotlib.rc_context(RC):
+        fig, axes = new_figure(0.5 + PANEL_IN * len(quantities), len(quantities), 1)
         alts = []
         for ax, q in zip(axes[:, 0], quantities, strict=True):
             unit = q.get("unit", "")
@@ -246,7 +90,7 @@ def budget_bars(budget: dict) -> Figure:
             labels = [f"discretisation ({pct:g}th pct.)", "round-off (measured)", "parameter sd"]
             allowance = finite(q.get("allowance"))
             zero = {1: "0 (no difference found)"} if finite(values[1]) == 0 else {}
-            _bar_panel(
+            bar_panel(
                 ax,
                 labels,
                 values,
@@ -267,7 +111,7 @@ def budget_bars(budget: dict) -> Figure:
                     va="bottom",
                     fontsize=7.5,
                 )
-            ax.set_title(_quantity_title(q), pad=14)
+            ax.set_title(quantity_title(q), pad=14)
             ax.set_xlabel(f"size [{unit}]")
             alts.append(
                 f"{q.get('name')}: discretisation error {plain(values[0])} {unit}, "
@@ -310,12 +154,12 @@ def convergence(budget: dict) -> Figure:
         )
     cols = 2 if len(panels) > 1 else 1
     rows = math.ceil(len(panels) / cols)
-    with matplotlib.rc_context(_RC):
-        fig, axes = _new(0.9 + 2.6 * rows, rows, cols)
+    with matplotlib.rc_context(RC):
+        fig, axes = new_figure(0.9 + 2.6 * rows, rows, cols)
         alts, handles = [], {}
         for ax, (q, points) in zip(axes.flat, panels, strict=False):
             unit = q.get("unit", "")
-            ax.set_title(_quantity_title(q))
+            ax.set_title(quantity_title(q))
             if len(points) < 2:
                 ax.text(
                     0.5,
@@ -377,9 +221,9 @@ def convergence(budget: dict) -> Figure:
             ax.set_xlabel(f"time step [{unit_t}]")
             ax.set_ylabel(f"|value − reference| [{unit}]")
             ax.grid(which="major", color=GRID, linewidth=0.6)
-            _plain_ticks(ax, "x", (1.0, 2.0, 5.0))
+            plain_ticks(ax, "x", (1.0, 2.0, 5.0))
             low, high = ax.get_ylim()
-            _plain_ticks(ax, "y", (1.0, 2.0, 5.0) if high / low < 10**2.5 else (1.0,))
+            plain_ticks(ax, "y", (1.0, 2.0, 5.0) if high / low < 10**2.5 else (1.0,))
             for handle, label in zip(*ax.get_legend_handles_labels(), strict=True):
                 handles.setdefault(
                     label.split(" (")[0] if "allowance" in label else label, (handle, label)
@@ -412,20 +256,15 @@ def convergence(budget: dict) -> Figure:
     return Figure(key, title, caption, alt, svg)
 
 
-def _clean(values) -> np.ndarray:
-    array = np.asarray(values if values is not None else [], dtype=float)
-    return np.where(np.isfinite(array), array, np.nan)
-
-
 def forecast(budget: dict, series: dict) -> Figure:
     """Ensemble band, nominal runs at the case's step and accurate, numerical error band."""
     key, title = "forecast", "The forecast over time"
     try:
-        times = _clean(series.get("times"))
-        band = _clean(series.get("band"))
-        error = _clean(series.get("error_p95"))
-        coarse = _clean(series.get("nominal_coarse"))
-        fine_t, fine = _clean(series.get("fine_times")), _clean(series.get("nominal_fine"))
+        times = clean(series.get("times"))
+        band = clean(series.get("band"))
+        error = clean(series.get("error_p95"))
+        coarse = clean(series.get("nominal_coarse"))
+        fine_t, fine = clean(series.get("fine_times")), clean(series.get("nominal_fine"))
     except (TypeError, ValueError):
         return skipped(key, title, "not drawn: the time series of the run are malformed")
     if times.size == 0 or band.shape != (3, times.size) or np.isnan(band).all():
@@ -438,8 +277,8 @@ def forecast(budget: dict, series: dict) -> Figure:
     unit_t = budget.get("simulation", {}).get("step", {}).get("unit", "")
     unit_n = budget.get("simulation", {}).get("population_unit", "")
     step_value = finite(budget.get("simulation", {}).get("step", {}).get("value"))
-    with matplotlib.rc_context(_RC):
-        fig, axes = _new(4.3, 2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.25]})
+    with matplotlib.rc_context(RC):
+        fig, axes = new_figure(4.3, 2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.25]})
         top, bottom = axes[0, 0], axes[1, 0]
         top.fill_between(
             times,
@@ -528,9 +367,9 @@ def sobol(budget: dict) -> Figure:
         return skipped(
             key, title, "not drawn: no Sobol indices (no uncertain parameters, or too few samples)"
         )
-    with matplotlib.rc_context(_RC):
+    with matplotlib.rc_context(RC):
         height = sum(0.75 + 0.3 * len(q["parameter"]["indices"]) for q in quantities)
-        fig, axes = _new(
+        fig, axes = new_figure(
             0.4 + height,
             len(quantities),
             1,
@@ -608,13 +447,13 @@ def stability(budget: dict) -> Figure:
     rows = steps + limits
     labels = [label for label, _ in rows]
     values = [finite(v) for _, v in rows]
-    with matplotlib.rc_context(_RC):
-        fig, axes = _new(0.6 + 0.34 * len(rows))
+    with matplotlib.rc_context(RC):
+        fig, axes = new_figure(0.6 + 0.34 * len(rows))
         ax = axes[0, 0]
         missing = {i: "no limit" for i in range(2, 5) if values[i] is None}
         if values[1] is None:
             missing[1] = "no step qualifies"
-        _bar_panel(
+        bar_panel(
             ax,
             labels,
             values,
@@ -652,8 +491,8 @@ def roundoff(budget: dict) -> Figure:
         for q in quantities
     ):
         return skipped(key, title, "not drawn: round-off was not measured")
-    with matplotlib.rc_context(_RC):
-        fig, axes = _new(0.4 + PANEL_IN * len(quantities), len(quantities), 1)
+    with matplotlib.rc_context(RC):
+        fig, axes = new_figure(0.4 + PANEL_IN * len(quantities), len(quantities), 1)
         alts = []
         for ax, q in zip(axes[:, 0], quantities, strict=True):
             unit = q.get("unit", "")
@@ -665,8 +504,8 @@ def roundoff(budget: dict) -> Figure:
             ]
             labels = ["measured (binary64)", "bound (u × steps × size)", "discretisation error"]
             zero = {0: "0 (no difference from the wider type)"} if finite(values[0]) == 0 else {}
-            _bar_panel(ax, labels, values, [PURPLE, SKY, VERMILLION], unit, zero, log=True)
-            ax.set_title(_quantity_title(q))
+            bar_panel(ax, labels, values, [PURPLE, SKY, VERMILLION], unit, zero, log=True)
+            ax.set_title(quantity_title(q))
             ax.set_xlabel(f"size [{unit}]")
             alts.append(
                 f"{q.get('name')}: measured {plain(values[0])}, bound "

@@ -13,7 +13,7 @@ from pathlib import Path
 import jinja2
 from markupsafe import Markup
 
-from errbudget.report import context, figures
+from errbudget.report import context, figures, plotting
 
 HERE = Path(__file__).parent
 TEMPLATE = "budget.html.j2"
@@ -64,12 +64,6 @@ def render_html(budget: dict, series: dict, case_text: str, *, include_figures: 
     if include_figures:
         page["figures"] = figures.all_figures(budget, series)
     else:
-        page["figures"] = [
-            figures.skipped(key, title, "figures were left out of this render")
-            for key, title in (
-                ("budget", "Error budget per quantity"),
-                ("forecast", "The forecast over time"),
-            )
-        ]
+        page["figures"] = [plotting.skipped("all", "Figures", "left out of this render")]
     page["css"] = _stylesheet()
     return _environment().get_template(TEMPLATE).render(**page)
