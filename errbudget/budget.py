@@ -10,14 +10,13 @@ spread (standard deviation), and no artefact flag is raised.
 from __future__ import annotations
 
 import math
-import time
 from fractions import Fraction
 
 import numpy as np
 
-from errbudget import __version__, artefacts
+from errbudget import __version__
 from errbudget.case import Case
-from errbudget.ensemble import n_steps_for, quantity_values, solve
+from errbudget.ensemble import n_steps_for
 from errbudget.roundoff import UNIT_ROUNDOFF
 
 SCHEMA = "errbudget.budget/1"
@@ -41,26 +40,16 @@ def candidate_steps(case: Case, finest: float) -> list[float]:
     return sorted(keep, reverse=True)
 
 
-def fine_at(finest, times: np.ndarray) -> np.ndarray:
-    """The finest level's states at ``times`` by linear interpolation, shape (T, S)."""
-    position = np.clip(times / finest.step, 0, finest.states.shape[0] - 1)
-    low = np.floor(position).astype(int)
-    high = np.minimum(low + 1, finest.states.shape[0] - 1)
-    weight = (position - low)[:, None]
-    states = finest.states.astype(float)
-    return (1 - weight) * states[low] + weight * states[high]
+def judge_step(case: Case, result: dict, reference, step: float, spreads, scale: float) -> dict:
+    """Apply the verdict rule to the ensemble's values at ``step`` against the reference.
 
-
-def judge_step(case: Case, params, reference, finest, step: float, spreads, levels) -> dict:
-    """Run the ensemble at ``step`` and apply the verdict rule against the reference."""
-    started = time.perf_counter()
+    ``result`` comes from :func:`errbudget.sweep.candidate_pass`; ``scale`` is the largest
+    |N| of the reference level, for the round-off bound n u |N| [population].
+    """
     from errbudget.run import discretisation_errors
 
-    traj = solve(case, params, step)
-    values, _ = quantity_values(case, traj)
-    errors = discretisation_errors(case, values, reference)
+    errors = discretisation_errors(case, result["values"], reference)
     n_steps = n_steps_for(case.horizon, step)
-    scale = float(np.nanmax(np.abs(finest.states))) if np.isfinite(finest.states).any() else 0.0
     ratios = []
     for q, spec in enumerate(case.quantities):
         if not np.isfinite(errors[q]).all():
@@ -71,9 +60,7 @@ def judge_step(case: Case, params, reference, finest, step: float, spreads, leve
         numerical = pct + n_steps * UNIT_ROUNDOFF[np.float64] * size
         sd = spreads[q]["sd"] or 0.0
         ratios.append(numerical / sd if sd > 0 else (0.0 if numerical == 0 else math.inf))
-    times = np.arange(traj.last_index + 1) * step
-    masks = artefacts.detect(traj.states, fine_at(finest, times), levels, traj.last_index)
-    present = [code for code in ARTEFACT_CODES if masks[code].any()]
+    present = [code for code in ARTEFACT_CODES if code in result["artefacts"]]
     worst = max(ratios)
     return {
         "step": step,
@@ -81,36 +68,37 @@ def judge_step(case: Case, params, reference, finest, step: float, spreads, leve
         "worst_ratio": worst,
         "artefacts": present,
         "adequate": worst <= case.budget.fraction and not present,
-        "member_steps": n_steps * reference.shape[1],
-        "seconds": time.perf_counter() - started,
+        "member_steps": result["member_steps"],
+        "seconds": result["seconds"],
     }
 
 
-def recommend(case: Case, params, reference, finest, *, stride_of: float, spreads, limits) -> dict:
-    """The coarsest candidate step that meets the rule, checked again at half of it."""
-    from errbudget.models import stable_equilibria
-
-    law = {k: v for k, v in params.items() if k != "N0"}
-    levels = [eq.value for eq in stable_equilibria(case.model, law)]
+def steps_to_try(case: Case, finest: float, limits) -> tuple[list[float], float]:
+    """Candidates (coarsest first) and their halves, and the ensemble's stability limit."""
     stable = limits["stable"]
     stable_limit = float(np.min(stable)) if np.isfinite(stable).any() else math.inf
+    candidates = [s for s in candidate_steps(case, finest) if s < stable_limit]
+    wanted = sorted({*candidates, *(s / 2 for s in candidates)}, reverse=True)
+    return wanted, stable_limit
+
+
+def recommend(case: Case, evaluated: dict, reference, *, finest: float, spreads, limits,
+              scale: float) -> dict:
+    """The coarsest candidate step that meets the rule, checked again at half of it.
+
+    ``evaluated`` maps every step of :func:`steps_to_try` to its ensemble results.
+    """
+    _, stable_limit = steps_to_try(case, finest, limits)
     tried = []
-    for step in candidate_steps(case, stride_of):
+    for step in candidate_steps(case, finest):
         if step >= stable_limit:
-            tried.append(
-                {
-                    "step": step,
-                    "adequate": False,
-                    "worst_ratio": None,
-                    "artefacts": [],
-                    "note": "beyond the stability limit",
-                }
-            )
+            tried.append({"step": step, "adequate": False, "worst_ratio": None,
+                          "artefacts": [], "note": "beyond the stability limit"})
             continue
-        result = judge_step(case, params, reference, finest, step, spreads, levels)
+        result = judge_step(case, evaluated[step], reference, step, spreads, scale)
         tried.append(result)
         if result["adequate"]:
-            half = judge_step(case, params, reference, finest, step / 2, spreads, levels)
+            half = judge_step(case, evaluated[step / 2], reference, step / 2, spreads, scale)
             if half["adequate"]:
                 return {"step": step, "half_check": half, "tried": tried, "reason": None}
     finest_tried = tried[-1]["step"] if tried else None

@@ -14,24 +14,15 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 from scipy import stats
 
-from errbudget import artefacts, ladder, roundoff, stability
-from errbudget.budget import assemble, recommend
+from errbudget import artefacts, ladder, roundoff, stability, sweep
+from errbudget.budget import STEP_MULTIPLES, assemble, recommend, steps_to_try
 from errbudget.case import Case
-from errbudget.convergence import richardson
-from errbudget.ensemble import (
-    ensemble_params,
-    n_steps_for,
-    nominal_params,
-    quantity_values,
-    solve,
-)
+from errbudget.ensemble import ensemble_params, n_steps_for, nominal_params, solve
 from errbudget.errors import InputError
-from errbudget.models import stable_equilibria
 from errbudget.schemes import get_scheme
 from errbudget.spread import sample_design, sobol_indices, spread_summary
 
-BYTES_PER_VALUE = 8
-WORK_COPIES = 6  # arrays alive at once per stored trajectory during a level (stages, temporaries)
+NOMINAL_POINTS = 2000  # most points of the accurate nominal run kept for the report
 BAND_PERCENTILES = (5.0, 50.0, 95.0)
 REFERENCE_DEPTH = 8  # reference step = predicted adequate step / this (candidate, half, margin)
 
@@ -52,9 +43,9 @@ class Budget:
 
 
 def estimate_memory_mb(case: Case, rows: int, finest_step: float) -> float:
-    """Peak memory of the ensemble runs [MB]: trajectories of the case's and finest levels."""
-    stored = n_steps_for(case.horizon, case.step) + 2 * n_steps_for(case.horizon, finest_step)
-    return rows * stored * BYTES_PER_VALUE * WORK_COPIES / 1e6
+    """Peak memory of the ensemble runs [MB]: one chunk of trajectories and per-member results."""
+    levels = 2 * len(STEP_MULTIPLES) + 3
+    return sweep.memory_mb(case, rows, finest_step, len(case.quantities), levels)
 
 
 def run_case(
@@ -124,63 +115,48 @@ def run_case(
         rows = design.n_rows
     else:
         design, sampled, rows = None, {}, 1
-    limit = case.budget.memory_limit_mb
-    need = estimate_memory_mb(case, rows, steps[-1])
-    if need > limit:
-        raise InputError(
-            f"this run would need about {need:.0f} MB ({rows} parameter sets, finest step "
-            f"{steps[-1]:g} {case.time_unit}), above the limit of {limit:.0f} MB; lower "
-            "[budget] samples, shorten the horizon, or raise [budget] memory_limit",
-            str(case.path),
-            "budget.samples",
-        )
+    _check_memory(case, rows, steps[-1])
     params = ensemble_params(case, sampled)
-
-    say(f"ensemble at the case's step ({rows} parameter sets)")
-    coarse = solve(case, params, case.step)
-    case_values, _ = quantity_values(case, coarse)
-    say("ensemble on the finest ladder levels")
-    finer, finest, reference = _reference_levels(case, params, steps[-2], steps[-1], scheme)
-    errors = discretisation_errors(case, case_values, reference)
     iid = design.independent_rows if design is not None else np.array([0])
-    deeper = _deeper_reference(case, errors, reference, iid, scheme.order, finest.step, rows, flags)
+    members = np.sort(iid)[: sweep.SERIES_MEMBERS]
+    count_times = fit.counts.times if fit is not None else None
+
+    say(f"ensemble at the case's step and the reference levels ({rows} parameter sets)")
+    passed = sweep.reference_pass(
+        case, params, scheme.order, steps[-2], steps[-1], members, count_times
+    )
+    errors = discretisation_errors(case, passed.case_values, passed.reference)
+    deeper = _deeper_reference(
+        case, errors, passed.reference, iid, scheme.order, passed.finest_step, rows, flags
+    )
     if deeper is not None:
         say("refining the reference for a fine step")
-        finer, finest, reference = _reference_levels(case, params, 2 * deeper, deeper, scheme)
-        errors = discretisation_errors(case, case_values, reference)
-
-    stride = round(case.step / finest.step)
-    fine_on_case_grid = finest.states[::stride][: coarse.states.shape[0]]
-    law = {k: v for k, v in params.items() if k != "N0"}
-    levels = [eq.value for eq in stable_equilibria(case.model, law)]
-    masks = artefacts.detect(coarse.states, fine_on_case_grid, levels, coarse.last_index)
-    flags.extend(artefacts.flags(masks, f"at the case's step of {case.step:g} {case.time_unit}"))
+        passed = sweep.reference_pass(
+            case, params, scheme.order, 2 * deeper, deeper, members, count_times
+        )
+        errors = discretisation_errors(case, passed.case_values, passed.reference)
+    reference = passed.reference
+    flags.extend(
+        artefacts.flags(passed.masks, f"at the case's step of {case.step:g} {case.time_unit}")
+    )
 
     say("parameter spread and Sobol indices")
-    spreads, indices = [], []
-    for q in range(len(case.quantities)):
-        spreads.append(spread_summary(reference[q, iid], case.budget.level))
-        if design is not None:
-            indices.append(sobol_indices(design, reference[q], seed=seed))
-        else:
-            indices.append({})
-
+    spreads, indices = _spreads(case, design, reference, iid, seed)
     drivers = _drivers(errors, sampled, design)
     say("round-off")
     rounding = roundoff.measure(case, case.step)
+    law = {k: v for k, v in params.items() if k != "N0"}
     limits = stability.step_limits(case.model, scheme, law)
 
     say("searching for the coarsest adequate step")
-    recommendation = recommend(
-        case, params, reference, finest, stride_of=finest.step, spreads=spreads, limits=limits
-    )
-    series = _series(case, coarse, finest, stride, iid, errors)
+    recommendation = _recommend(case, params, reference, passed, spreads, limits)
+    series = _series(case, passed, errors)
     elapsed = time.perf_counter() - started
     data = assemble(
         case,
         scheme=scheme,
         steps_info=steps_info,
-        case_values=case_values,
+        case_values=passed.case_values,
         reference=reference,
         errors=errors,
         spreads=spreads,
@@ -198,32 +174,60 @@ def run_case(
         series=series,
     )
     data["better_data"] = (
-        _better_data(
-            case,
-            joint,
-            independent,
-            n_base,
-            seed,
-            finer.step,
-            finest.step,
-            scheme,
-            limits,
-            recommendation,
-        )
+        _better_data(case, joint, independent, n_base, seed, passed, limits, recommendation)
         if joint is not None
         else None
     )
     data["run"]["reference_steps"] = [
-        {"value": finer.step, "unit": case.time_unit},
-        {"value": finest.step, "unit": case.time_unit},
+        {"value": passed.finer_step, "unit": case.time_unit},
+        {"value": passed.finest_step, "unit": case.time_unit},
     ]
+    data["run"]["chunk_rows"] = sweep.chunk_rows(case, passed.finest_step, rows)
     if case.counts is not None and fit is not None:
         from errbudget.validation import validate_run
 
-        data["validation"] = validate_run(case, fit, finest, iid)
+        data["validation"] = validate_run(case, fit, passed.count_values)
         if data["validation"]["flag"] is not None:
             data["flags"].append(data["validation"]["flag"])
     return Budget(data, series)
+
+
+def _check_memory(case: Case, rows: int, finest_step: float) -> None:
+    """Refuse a run whose estimated memory exceeds ``[budget] memory_limit``."""
+    limit = case.budget.memory_limit_mb
+    need = estimate_memory_mb(case, rows, finest_step)
+    if need > limit:
+        raise InputError(
+            f"this run would need about {need:.0f} MB ({rows} parameter sets, finest step "
+            f"{finest_step:g} {case.time_unit}), above the limit of {limit:.0f} MB; lower "
+            "[budget] samples, shorten the horizon, or raise [budget] memory_limit",
+            str(case.path),
+            "budget.samples",
+        )
+
+
+def _spreads(case: Case, design, reference, iid, seed) -> tuple[list[dict], list[dict]]:
+    """Per quantity: the forecast spread on the reference values, and the Sobol indices."""
+    spreads, indices = [], []
+    for q in range(len(case.quantities)):
+        spreads.append(spread_summary(reference[q, iid], case.budget.level))
+        indices.append(sobol_indices(design, reference[q], seed=seed) if design else {})
+    return spreads, indices
+
+
+def _recommend(case: Case, params, reference, passed, spreads, limits) -> dict:
+    """Evaluate every candidate step (and its half) in one sweep, then pick the coarsest."""
+    wanted, _ = steps_to_try(case, passed.finest_step, limits)
+    evaluated = sweep.candidate_pass(case, params, passed.finest_step, wanted)
+    return recommend(
+        case,
+        evaluated,
+        reference,
+        finest=passed.finest_step,
+        spreads=spreads,
+        limits=limits,
+        scale=passed.scale,
+    )
 
 
 def with_fitted_nominal(case: Case, fit) -> Case:
@@ -237,16 +241,7 @@ def with_fitted_nominal(case: Case, fit) -> Case:
 
 
 def _better_data(
-    case: Case,
-    joint,
-    independent,
-    n_base,
-    seed,
-    finer_step,
-    finest_step,
-    scheme,
-    limits,
-    recommendation,
+    case: Case, joint, independent, n_base, seed, passed, limits, recommendation
 ) -> dict:
     """The budget again as if the counts were doubled: the fitted covariance halved.
 
@@ -264,14 +259,21 @@ def _better_data(
     )
     design = sample_design(independent, halved, n_base, seed)
     params = ensemble_params(case, design.values)
-    _, finest, reference = _reference_levels(case, params, finer_step, finest_step, scheme)
+    members = np.sort(design.independent_rows)[: sweep.SERIES_MEMBERS]
+    again = sweep.reference_pass(
+        case,
+        params,
+        get_scheme(case.scheme).order,
+        passed.finer_step,
+        passed.finest_step,
+        members,
+        None,
+    )
     spreads = [
-        spread_summary(reference[q, design.independent_rows], case.budget.level)
+        spread_summary(again.reference[q, design.independent_rows], case.budget.level)
         for q in range(len(case.quantities))
     ]
-    better = recommend(
-        case, params, reference, finest, stride_of=finest_step, spreads=spreads, limits=limits
-    )
+    better = _recommend(case, params, again.reference, again, spreads, limits)
     now, then = recommendation["step"], better["step"]
     unit = case.time_unit
     if then is None:
@@ -295,16 +297,6 @@ def _better_data(
         "parameter_sd": {spec.name: spreads[q]["sd"] for q, spec in enumerate(case.quantities)},
         "statement": statement,
     }
-
-
-def _reference_levels(case: Case, params, finer_step: float, finest_step: float, scheme):
-    """Ensemble runs on two levels (ratio 2) and the per-member Richardson reference."""
-    finer = solve(case, params, finer_step)
-    finest = solve(case, params, finest_step)
-    finer_values, _ = quantity_values(case, finer)
-    finest_values, _ = quantity_values(case, finest)
-    reference = richardson(finest_values, finer_values, ladder.RATIO, scheme.order)
-    return finer, finest, reference
 
 
 def _deeper_reference(
@@ -392,28 +384,35 @@ def _drivers(errors: np.ndarray, sampled: dict, design) -> list[dict | None]:
     return result
 
 
-def _series(case: Case, coarse, finest, stride: int, iid: np.ndarray, errors) -> dict:
-    """Time series for the report: nominal-free ensemble bands and the error along the run."""
-    last = coarse.last_index
-    times = np.arange(last + 1) * case.step
-    fine = finest.states[::stride][: last + 1].astype(float)
-    coarse_states = coarse.states[: last + 1].astype(float)
+def _series(case: Case, passed, errors) -> dict:
+    """Time series for the report: ensemble bands and the numerical error along the run.
+
+    Bands use the first SERIES_MEMBERS independent draws of the design, at up to
+    SERIES_POINTS times of the case's grid.
+    """
+    times = passed.series_index * case.step
+    fine, coarse = passed.series_fine, passed.series_coarse
     with np.errstate(invalid="ignore"):
-        gap = np.abs(coarse_states - fine)
-        band = np.nanpercentile(fine[:, iid], BAND_PERCENTILES, axis=1)
-        gap_high = np.nanpercentile(gap[:, iid], 95.0, axis=1)
+        gap = np.abs(coarse - fine)
+        band = np.nanpercentile(fine, BAND_PERCENTILES, axis=1)
+        gap_high = np.nanpercentile(gap, 95.0, axis=1)
     worst = int(np.nanargmax(gap_high)) if np.isfinite(gap_high).any() else 0
-    fine_times = np.arange(finest.last_index + 1) * finest.step
+    nominal = nominal_params(case)
+    accurate = solve(case, nominal, passed.finest_step)
+    keep = np.unique(
+        np.linspace(0, accurate.last_index, min(accurate.last_index + 1, NOMINAL_POINTS))
+        .round()
+        .astype(int)
+    )
+    coarse_nominal = solve(case, nominal, case.step)
     return {
         "times": times,
-        "fine_times": fine_times,
+        "fine_times": keep * passed.finest_step,
         "band": band,
         "error_p95": gap_high,
         "worst_time": float(times[worst]),
         "worst_error": float(gap_high[worst]) if np.isfinite(gap_high[worst]) else None,
-        "nominal_coarse": solve(case, nominal_params(case), case.step).states[: last + 1, 0],
-        "nominal_fine": solve(case, nominal_params(case), finest.step).states[
-            : finest.last_index + 1, 0
-        ],
+        "nominal_coarse": coarse_nominal.states[passed.series_index, 0],
+        "nominal_fine": accurate.states[keep, 0],
         "errors": errors,
     }

@@ -211,7 +211,7 @@ def compare_with_counts(
     }
 
 
-def validate_run(case, fit, finest: Trajectory, rows: np.ndarray) -> dict:
+def validate_run(case, fit, count_values: np.ndarray | None) -> dict:
     """Validation of a run: S and u_D from the fit, u_input from the ensemble, u_num at the step.
 
     Parameters
@@ -219,12 +219,10 @@ def validate_run(case, fit, finest: Trajectory, rows: np.ndarray) -> dict:
     case : Case
     fit : CaseFit
         The fit to the case's counts.
-    finest : Trajectory
-        The ensemble on the finest ladder level; its spread over ``rows`` at a count time is
-        u_input (sample sd) [population unit]. Counts after its last grid point get u_input 0
-        and are named in the statement.
-    rows : numpy.ndarray
-        Indices of the independent members of the design.
+    count_values : numpy.ndarray or None
+        The ensemble's accurate solutions at the count times, shape (T_c, M), over independent
+        draws of the design; NaN after the horizon. Their sample sd is u_input
+        [population unit]; counts after the horizon get u_input 0 and are named.
 
     Returns
     -------
@@ -232,15 +230,14 @@ def validate_run(case, fit, finest: Trajectory, rows: np.ndarray) -> dict:
         As :func:`compare_with_counts`.
     """
     times = np.asarray(fit.counts.times, dtype=float)
-    end = finest.states.shape[0] - 1
     u_input = np.zeros(times.shape)
-    if len(rows) > 1:
-        for i, t in enumerate(times):
-            if t <= end * finest.step * (1 + HORIZON_SLACK):
-                u_input[i] = float(np.nanstd(finest.value_at(float(t))[0][rows], ddof=1))
+    late = times > case.horizon * (1 + HORIZON_SLACK)
+    if count_values is not None and count_values.shape[1] > 1:
+        with np.errstate(invalid="ignore"):
+            spread = np.nanstd(count_values, axis=1, ddof=1)
+        u_input = np.where(late | ~np.isfinite(spread), 0.0, spread)
     u_num = np.abs(at_case_step(case, fit, times) - np.asarray(fit.result.fitted, dtype=float))
     data = compare_with_counts(case, fit, None, u_input, u_num)
-    late = times > end * finest.step * (1 + HORIZON_SLACK)
     if late.any():
         data["statement"] += (
             f" {int(late.sum())} count(s) after the horizon carry no parameter spread (u_input 0)."

@@ -257,16 +257,17 @@ def test_title_with_markup_is_escaped(report, tmp_path):
     assert element_text(html, "case-title") == hostile  # shown as text, not dropped
 
 
-def test_other_user_strings_are_escaped(report):
+def test_other_user_strings_are_escaped_in_tables_and_figures(report):
     data = copy.deepcopy(report.data)
-    data["quantities"][0]["name"] = '<img src=x onerror="alert(1)">'
+    data["quantities"][0]["name"] = '<img src=x onerror="alert(1)"> $\\frac{a}{$'
+    data["quantities"][0]["unit"] = "<i>fish</i>"
     data["flags"] = [{"code": "<b>x</b>", "message": "</pre><script>alert(2)</script>"}]
-    html = render_html(
-        data, report.budget.series, "</pre><script>alert(3)</script>", include_figures=False
-    )
+    html = render_html(data, report.budget.series, "</pre><script>alert(3)</script>")
     assert "<script" not in html.lower()
-    assert "<img" not in html and "<b>x" not in html
+    assert "<img" not in html and "<b>x" not in html and "<i>fish" not in html
     assert "&lt;img src=x" in html
+    page = Page(html)  # the name is in figure titles too; a "$" must not break a figure
+    assert {f["id"].removeprefix("fig-") for f in page.figures} == EXPECTED_FIGURES
 
 
 # ---------------------------------------------------------------------------------------
@@ -324,7 +325,16 @@ def test_optional_sections_render_when_present(report):
         "error": "poisson",
         "n_counts": 14,
     }
-    data["validation"] = {"E": 123.4, "u_val": 98.7, "unit": "crayfish", "model_form": True}
+    data["validation"] = {
+        "times": [0.0, 14.0, 30.0],
+        "D": [262.0, 422.0, 656.0],
+        "E": [16.5, -1.13, 12.1],
+        "exceed": [False, False, True],
+        "unit": "crayfish",
+        "time_unit": "day",
+        "coverage": 2.0,
+        "model_form": True,
+    }
     html = render_html(data, report.budget.series, report.case.text, include_figures=False)
     text = unescape(html).replace("\u202f", " ")
     for expected in (
@@ -340,8 +350,11 @@ def test_optional_sections_render_when_present(report):
         "poisson",
         "14",
         "Validation against the counts",
-        "u_val",
-        "98.7",
+        "times [day]",
+        "E [crayfish]",
+        "<td>-1.13</td>",
+        "<td>656</td>",
+        "coverage",
         "model_form",
     ):
         assert expected in text, expected
@@ -442,7 +455,7 @@ def saved(report, tmp_path_factory):
     return folder
 
 
-def test_first_screen_screenshot(saved, tmp_path):
+def test_first_screen_screenshot(report, saved, tmp_path):
     from PIL import Image  # matplotlib's own dependency
 
     binary = _chromium()
@@ -461,6 +474,13 @@ def test_first_screen_screenshot(saved, tmp_path):
         assert image.size == (1280, 900)
         colours = image.convert("RGB").getcolors(maxcolors=1 << 20)
     assert colours is None or len(colours) > 50  # text and the answer box, not a blank page
+    # The answer box is on the first screen: its tint covers a good part of the window.
+    style = re.search(r"<style>(.*?)</style>", report.html, flags=re.S).group(1)
+    name = "--accent-wash" if report.data["verdict"]["adequate"] else "--warn-wash"
+    tint = re.search(rf"{name}:\s*#([0-9a-fA-F]{{6}})", style).group(1)
+    target = np.array([int(tint[i : i + 2], 16) for i in (0, 2, 4)])
+    pixels = np.asarray(Image.open(png).convert("RGB")).reshape(-1, 3).astype(int)
+    assert (np.abs(pixels - target).max(axis=1) <= 2).sum() > 50_000
 
 
 def test_pdf_print_is_a4(saved, tmp_path):

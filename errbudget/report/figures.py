@@ -159,7 +159,7 @@ def convergence(budget: dict) -> Figure:
         alts, handles = [], {}
         for ax, (q, points) in zip(axes.flat, panels, strict=False):
             unit = q.get("unit", "")
-            ax.set_title(quantity_title(q))
+            ax.set_title(quantity_title(q), pad=8)
             if len(points) < 2:
                 ax.text(
                     0.5,
@@ -505,7 +505,7 @@ def roundoff(budget: dict) -> Figure:
             labels = ["measured (binary64)", "bound (u × steps × size)", "discretisation error"]
             zero = {0: "0 (no difference from the wider type)"} if finite(values[0]) == 0 else {}
             bar_panel(ax, labels, values, [PURPLE, SKY, VERMILLION], unit, zero, log=True)
-            ax.set_title(quantity_title(q))
+            ax.set_title(quantity_title(q), pad=8)
             ax.set_xlabel(f"size [{unit}]")
             alts.append(
                 f"{q.get('name')}: measured {plain(values[0])}, bound "

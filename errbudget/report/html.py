@@ -52,7 +52,7 @@ def render_html(budget: dict, series: dict, case_text: str, *, include_figures: 
     case_text : str
         The case file's text, shown escaped in the "How it was made" section.
     include_figures : bool, optional
-        False leaves out the matplotlib figures (each replaced by a note), e.g. for a quick
+        False leaves out the matplotlib figures (one note in their place), e.g. for a quick
         preview.
 
     Returns
