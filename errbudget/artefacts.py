@@ -16,13 +16,19 @@ FLAT_INCREMENT = 1e-9  # increments below this share of the largest |N| count as
 def _sign_changes(states: np.ndarray, scale: np.ndarray) -> np.ndarray:
     """Sign changes of the increments, ignoring flat ones, per member; states (T, S)."""
     increments = np.diff(states, axis=0)
-    signs = np.sign(np.where(np.abs(increments) > FLAT_INCREMENT * scale, increments, 0.0))
-    changes = np.zeros(states.shape[1], dtype=int)
-    last = np.zeros(states.shape[1])
-    for row in signs:  # loop over time, vectorised over members
-        changes += (row != 0) & (last != 0) & (row != last)
-        last = np.where(row != 0, row, last)
-    return changes
+    threshold = FLAT_INCREMENT * scale
+    signs = (increments > threshold).astype(np.int8) - (increments < -threshold).astype(np.int8)
+    if signs.shape[0] < 2:
+        return np.zeros(states.shape[1], dtype=int)
+    # Carry the last non-flat sign forward over flat increments, then count the flips.
+    if signs.all():  # no flat increment at all (the usual case): no carrying needed
+        carried = signs
+    else:
+        rows = np.arange(signs.shape[0], dtype=np.int32)[:, None]
+        last = np.maximum.accumulate(np.where(signs != 0, rows, np.int32(0)), axis=0)
+        carried = np.take_along_axis(signs, last, axis=0)
+    flips = (carried[1:] != carried[:-1]) & (carried[1:] != 0) & (carried[:-1] != 0)
+    return flips.sum(axis=0).astype(int)
 
 
 def _crosses(states: np.ndarray, level: np.ndarray) -> np.ndarray:
@@ -34,7 +40,12 @@ def _crosses(states: np.ndarray, level: np.ndarray) -> np.ndarray:
 
 
 def detect(
-    coarse: np.ndarray, fine: np.ndarray, stable_levels: list[np.ndarray], horizon_index: int
+    coarse: np.ndarray,
+    fine: np.ndarray,
+    stable_levels: list[np.ndarray],
+    horizon_index: int,
+    *,
+    sustained: bool = True,
 ) -> dict[str, np.ndarray]:
     """Per-member artefact masks.
 
@@ -48,6 +59,8 @@ def detect(
         Values of stable equilibria per member (NaN where absent) [population].
     horizon_index : int
         Last grid index at or before the horizon.
+    sustained : bool
+        Also test whether oscillation persists (skipped when only presence matters).
 
     Returns
     -------
@@ -77,15 +90,18 @@ def detect(
         extra = _sign_changes(safe, scale) > _sign_changes(fine, scale)
         oscillation = fine_ok & ~divergence & extra
         tail = max(3, coarse.shape[0] // 4)
-        sustained = oscillation & (
-            _sign_changes(safe[-tail:], scale) > _sign_changes(fine[-tail:], scale) + 1
+        lasting = (
+            oscillation
+            & (_sign_changes(safe[-tail:], scale) > _sign_changes(fine[-tail:], scale) + 1)
+            if sustained and oscillation.any()
+            else np.zeros_like(oscillation)
         )
     return {
         "divergence": divergence,
         "negative": negative,
         "overshoot": overshoot,
         "oscillation": oscillation,
-        "sustained": sustained,
+        "sustained": lasting,
     }
 
 

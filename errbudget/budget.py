@@ -82,8 +82,9 @@ def steps_to_try(case: Case, finest: float, limits) -> tuple[list[float], float]
     return wanted, stable_limit
 
 
-def recommend(case: Case, evaluated: dict, reference, *, finest: float, spreads, limits,
-              scale: float) -> dict:
+def recommend(
+    case: Case, evaluated: dict, reference, *, finest: float, spreads, limits, scale: float
+) -> dict:
     """The coarsest candidate step that meets the rule, checked again at half of it.
 
     ``evaluated`` maps every step of :func:`steps_to_try` to its ensemble results.
@@ -92,8 +93,15 @@ def recommend(case: Case, evaluated: dict, reference, *, finest: float, spreads,
     tried = []
     for step in candidate_steps(case, finest):
         if step >= stable_limit:
-            tried.append({"step": step, "adequate": False, "worst_ratio": None,
-                          "artefacts": [], "note": "beyond the stability limit"})
+            tried.append(
+                {
+                    "step": step,
+                    "adequate": False,
+                    "worst_ratio": None,
+                    "artefacts": [],
+                    "note": "beyond the stability limit",
+                }
+            )
             continue
         result = judge_step(case, evaluated[step], reference, step, spreads, scale)
         tried.append(result)

@@ -152,14 +152,25 @@ def integrate_compiled(
         kernel(out, rows, float(step), int(n_steps), 0, size, *factors)
         return out
     # The kernel releases the GIL: each thread fills its own columns of ``out``.
-    with ThreadPoolExecutor(len(parts)) as pool:
-        jobs = [
-            pool.submit(kernel, out, rows, float(step), int(n_steps), lo, hi, *factors)
-            for lo, hi in parts
-        ]
-        for job in jobs:
-            job.result()
+    pool = _pool(len(parts))
+    jobs = [
+        pool.submit(kernel, out, rows, float(step), int(n_steps), lo, hi, *factors)
+        for lo, hi in parts
+    ]
+    for job in jobs:
+        job.result()
     return out
+
+
+_POOLS: dict[int, ThreadPoolExecutor] = {}
+
+
+def _pool(threads: int) -> ThreadPoolExecutor:
+    """One long-lived pool per thread count: starting threads for every solve costs more
+    than many small solves themselves."""
+    if threads not in _POOLS:
+        _POOLS[threads] = ThreadPoolExecutor(threads, thread_name_prefix="errbudget")
+    return _POOLS[threads]
 
 
 def _partition(size: int, threads: int) -> list[tuple[int, int]]:

@@ -167,7 +167,9 @@ def candidate_pass(case: Case, params: dict, finest_step: float, steps: list[flo
             traj = solve(case, p, step)
             values, _ = quantity_values(case, traj)
             times = np.arange(traj.last_index + 1) * step
-            found = artefacts.detect(traj.states, fine_at(finest, times), levels, traj.last_index)
+            found = artefacts.detect(
+                traj.states, fine_at(finest, times), levels, traj.last_index, sustained=False
+            )
             result = results[step]
             result["values"].append(values)
             result["artefacts"].update(code for code in artefacts.MESSAGES if found[code].any())
