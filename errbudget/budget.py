@@ -111,7 +111,8 @@ def recommend(
                 return {"step": step, "half_check": half, "tried": tried, "reason": None}
     finest_tried = tried[-1]["step"] if tried else None
     reason = (
-        f"no candidate step down to {finest_tried:g} {case.time_unit} meets the rule"
+        f"no candidate step down to {with_unit(f'{finest_tried:g}', finest_tried, case.time_unit)}"
+        " meets the rule"
         if tried
         else "the horizon is too short for any candidate step"
     )
@@ -126,6 +127,15 @@ def plain_step(step: float) -> str:
     if abs(float(fraction) - step) < 1e-12 and fraction.denominator <= 64:
         return f"{fraction.numerator}/{fraction.denominator}"
     return f"{step:.4g}"
+
+
+TIME_WORDS = ("second", "minute", "hour", "day", "week", "month", "year")
+
+
+def with_unit(text: str, value: float, unit: str) -> str:
+    """'7' and 'day' -> '7 days' in sentences (time words only; counts keep their name)."""
+    plural = unit in TIME_WORDS and value != 1
+    return f"{text} {unit}s" if plural else f"{text} {unit}"
 
 
 def clean(value):
@@ -454,10 +464,10 @@ def _verdict(
         (pair for pair in ratios if pair[0] is not None), key=lambda p: p[0], default=(None, None)
     )[1]
     adequate = not undefined and not artefact_flags and all(r <= fraction for r, _ in ratios)
-    step_text = f"{plain_step(case.step)} {case.time_unit}"
+    step_text = with_unit(plain_step(case.step), case.step, case.time_unit)
     rec = recommendation["step"]
     rec_text = (
-        f"The coarsest adequate step is {plain_step(rec)} {case.time_unit}."
+        f"The coarsest adequate step is {with_unit(plain_step(rec), rec, case.time_unit)}."
         if rec is not None
         else f"No candidate step qualifies: {recommendation['reason']}."
     )
@@ -480,7 +490,7 @@ def _verdict(
         )
         first = (
             f'At {step_text}, the numerical error of "{binding["name"]}" is '
-            f"{numerical:.3g} {binding['unit']}, {times:.2g} times the "
+            f"{with_unit(f'{numerical:.3g}', numerical, binding['unit'])}, {times:.2g} times the "
             f"{fraction:.0%} allowance of its parameter spread: {verdict_text}."
         )
     else:
