@@ -130,6 +130,7 @@ def _run_one(case, args) -> None:
     from errbudget.outputs import dumps, write_atomic
     from errbudget.report import render_html
     from errbudget.run import run_case
+    from errbudget.tables import ladder_csv, summary_csv
 
     say, bar = _progress(args.quiet, case.path.stem)
     try:
@@ -147,6 +148,8 @@ def _run_one(case, args) -> None:
         html = render_html(data, budget.series, case.text)
         write_atomic(folder / "budget.json", dumps(data))
         write_atomic(folder / "budget.html", html)
+        write_atomic(folder / "ladder.csv", ladder_csv(data))
+        write_atomic(folder / "summary.csv", summary_csv(data))
         history.append(folder, line)
     verdict = data["verdict"]
     print(f"{case.path}: {'ADEQUATE' if verdict['adequate'] else 'NOT ADEQUATE'}")
