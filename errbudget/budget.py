@@ -217,6 +217,10 @@ def assemble(
             {
                 "name": spec.name,
                 "kind": spec.kind,
+                "at": None if spec.at is None else {"value": spec.at, "unit": case.time_unit},
+                "level": None
+                if spec.level is None
+                else {"value": spec.level, "unit": case.population_unit},
                 "unit": unit,
                 "value": _number(nominal_value),
                 "reference": reference_nominal,

@@ -151,6 +151,12 @@ def run_case(
     say("searching for the coarsest adequate step")
     recommendation = _recommend(case, params, reference, passed, spreads, limits)
     series = _series(case, passed, errors)
+    series["stability"] = _stability_map(case, sampled, limits, members)
+    if fit is not None:
+        series["counts"] = {
+            "times": np.asarray(fit.counts.times, float),
+            "counts": np.asarray(fit.counts.counts, float),
+        }
     elapsed = time.perf_counter() - started
     data = assemble(
         case,
@@ -382,6 +388,32 @@ def _drivers(errors: np.ndarray, sampled: dict, design) -> list[dict | None]:
                     best = {"name": name, "rho": rho}
         result.append(best)
     return result
+
+
+def _stability_map(case: Case, sampled: dict, limits: dict, members: np.ndarray) -> dict | None:
+    """Per-member step limits against the input they depend on most, for the report."""
+    stable = np.asarray(limits["stable"], dtype=float)
+    if stable.size < 2 or not np.isfinite(stable).any() or not sampled:
+        return None
+    finite = np.isfinite(stable)
+    best, best_rho = None, 0.0
+    for name, values in sampled.items():
+        if np.ptp(values[finite]) == 0:
+            continue
+        rho = float(stats.spearmanr(values[finite], stable[finite]).statistic)
+        if math.isfinite(rho) and abs(rho) > abs(best_rho):
+            best, best_rho = name, rho
+    if best is None:
+        return None
+    monotone = np.asarray(limits["monotone"], dtype=float)
+    return {
+        "parameter": best,
+        "unit": case.parameters[best].unit,
+        "values": sampled[best][members],
+        "stable": stable[members],
+        "monotone": monotone[members] if monotone.size == stable.size else None,
+        "rho": best_rho,
+    }
 
 
 def _series(case: Case, passed, errors) -> dict:
