@@ -37,6 +37,8 @@ PYTHON_SUBSET = 6  # members timed with the pure-Python loop, per ladder level
 IVP_RTOL, IVP_ATOL = 1e-8, 1e-6  # [-], [crayfish]: error below the RK4 ladder's coarse levels
 E2E_SAMPLES = (1024, 65536)
 
+CUSTOM_RATE = "r*N*(1 - N/K) - E*N"  # the same law written as a custom expression
+
 CASE_TEXT = """title = "benchmark: logistic with proportional harvest, 4 uncertain inputs"
 [model]
 form = "logistic-harvest"
@@ -209,7 +211,7 @@ def end_to_end(samples: int, out: Path) -> dict:
         "-m",
         "errbudget",
         "run",
-        str(ROOT / "cases/crayfish-pond.toml"),
+        "cases/crayfish-pond.toml",
         "--out",
         str(out),
         "--quiet",
@@ -229,6 +231,13 @@ def main() -> None:
         case_path = Path(tmp) / "bench.toml"
         case_path.write_text(CASE_TEXT)
         case = load_case(case_path)
+        custom_path = Path(tmp) / "bench-custom.toml"
+        custom_path.write_text(
+            CASE_TEXT.replace(
+                'form = "logistic-harvest"', f'form = "custom"\nrate = "{CUSTOM_RATE}"'
+            )
+        )
+        custom = load_case(custom_path)
         params = ensemble_rows(case)
         rows = params["N0"].size
         n0, r, k, e = (params[x] for x in ("N0", "r", "K", "E"))
@@ -265,6 +274,14 @@ def main() -> None:
 
             engine_run()  # compile or load from cache before timing
             t_engine = best(engine_run)
+            custom_kernel, custom_spec = ensemble._compiled(custom.model, scheme)
+
+            def custom_run(kernel=custom_kernel, spec=custom_spec, scheme=scheme, steps=steps):
+                for h, n in zip(LADDER, steps, strict=True):
+                    engine.integrate_compiled(kernel, spec, n0, law, h, n, scheme)
+
+            custom_run()
+            t_custom = best(custom_run)
             t_engine1 = best(lambda run=engine_run: run(1))
             t_numpy = best(lambda name=name: over_ladder(numpy_loop, rows, name))
             t_py = best(lambda name=name: over_ladder(python_loop, PYTHON_SUBSET, name), 1)
@@ -274,6 +291,7 @@ def main() -> None:
             for label, seconds in (
                 (f"a) errbudget engine ({engine.THREADS} threads)", t_engine),
                 ("a) errbudget engine (1 thread)", t_engine1),
+                (f"a') engine, same law as custom rate `{CUSTOM_RATE}`", t_custom),
                 ("b) per-sample solve_ivp RK45 (extrapolated)", t_ivp),
                 ("c) per-sample pure Python (extrapolated)", t_py),
                 ("d) numpy loop over steps, vectorised", t_numpy),
