@@ -530,3 +530,250 @@ def test_page_makes_no_request_but_itself(report, saved, tmp_path):
     assert result.returncode == 0, result.stderr[-2000:]
     assert report.data["verdict"]["reason"].split(",")[0].encode() in result.stdout
     assert server.seen == [("GET", "/budget.html")]
+
+
+# ---------------------------------------------------------------------------------------
+# Stability map, counts, better data, cost of the step, round-off curve, CSV companions
+
+COUNTED_CASE = ROOT / "cases" / "perch-reservoir.toml"  # the demo case with field counts
+HOSTILE = "<script>alert(9)</script>"
+
+
+@pytest.fixture(scope="module")
+def counted():
+    case = errbudget.load_case(COUNTED_CASE)
+    budget = errbudget.run_case(case, samples=SAMPLES)
+    data = json.loads(dumps(budget.to_dict()))
+    html = render_html(data, budget.series, case.text)
+    return SimpleNamespace(case=case, budget=budget, data=data, html=html)
+
+
+def _figure(html: str, key: str) -> tuple[str, str, str]:
+    """(heading, alt text, caption) of the figure ``key``, entities decoded."""
+    match = re.search(rf'<figure id="fig-{key}">(.*?)</figure>', html, flags=re.S)
+    assert match, f"figure {key} not drawn"
+    body = match.group(1)
+    heading = re.search(r"<h3>(.*?)</h3>", body, flags=re.S).group(1)
+    alt = re.search(r"<title[^>]*>(.*?)</title>", body, flags=re.S).group(1)
+    caption = re.search(r"<figcaption>(.*?)</figcaption>", body, flags=re.S).group(1)
+    return tuple(unescape(t).replace("\u202f", " ") for t in (heading, alt, caption))
+
+
+def _text(html: str) -> str:
+    return unescape(re.sub(r"<[^>]+>", " ", html)).replace("\u202f", " ")
+
+
+def test_stability_map_is_drawn_from_the_series(report):
+    info = report.budget.series["stability"]
+    assert info is not None
+    heading, alt, caption = _figure(report.html, "stability")
+    assert heading == "Stability map of the step"
+    assert f"{info['parameter']} goes from" in alt
+    assert len(info["values"]) == int(re.search(r"of (\d+) ensemble members", alt).group(1))
+    strictest = report.data["stability"]["stable_step"]["value"]
+    shown = re.search(r"strictest limit ([\d.]+) day", alt).group(1)
+    assert float(shown) == pytest.approx(strictest, rel=5e-3)  # three significant digits
+    assert "stable for the whole ensemble" in caption
+    assert "central 90 %" in caption
+    svg = re.search(r'<figure id="fig-stability">.*?</figure>', report.html, flags=re.S).group(0)
+    assert f"{info['parameter']} [{info['unit']}]" in unescape(svg)  # x axis: input and unit
+    assert "case&#39;s step" in svg or "case's step" in unescape(svg)
+    assert "recommended step" in unescape(svg)
+    has_monotone = info["monotone"] is not None and np.isfinite(info["monotone"]).any()
+    assert ("Squares:" in caption) == has_monotone
+
+
+def test_stability_map_falls_back_to_the_bars_without_its_series(report):
+    series = dict(report.budget.series, stability=None)
+    html = render_html(report.data, series, report.case.text)
+    heading, alt, _ = _figure(html, "stability")
+    assert heading == "Stability limits of the step"
+    assert alt.startswith("Bar chart of steps")
+
+
+def test_stability_map_survives_non_finite_members(report):
+    info = dict(report.budget.series["stability"])
+    values = np.array(info["values"], dtype=float)
+    stable = np.array(info["stable"], dtype=float)
+    values[::4] = np.nan
+    stable[1::4] = np.inf
+    stable[2::4] = -1.0  # not a step: masked
+    info.update(values=values, stable=stable, monotone=np.full_like(stable, np.inf), rho=np.nan)
+    html = render_html(report.data, dict(report.budget.series, stability=info), report.case.text)
+    heading, alt, caption = _figure(html, "stability")
+    assert heading == "Stability map of the step"
+    kept = int((np.isfinite(values) & np.isfinite(stable) & (stable > 0)).sum())
+    assert f"of {kept} ensemble members" in alt
+    assert "No member has a finite no-oscillation limit" in caption
+    assert "Spearman" not in caption and "nan" not in alt.lower().split()
+
+
+def test_counts_and_quantity_marks_on_the_forecast(counted, report):
+    counts = counted.budget.series["counts"]
+    _, alt, caption = _figure(counted.html, "forecast")
+    assert f"{len(counts['times'])} field counts are drawn as points" in alt
+    assert "field counts" in caption
+    for q in counted.data["quantities"]:
+        if q.get("at"):
+            assert f"{q['name']} at {q['at']['value']:g} {q['at']['unit']}" in alt
+        if q.get("level"):
+            assert f"{q['name']} at level {q['level']['value']:g} {q['level']['unit']}" in alt
+    # Without counts there are no count points, but the crayfish marks are still there.
+    assert "counts" not in report.budget.series
+    _, alt_plain, caption_plain = _figure(report.html, "forecast")
+    assert "field counts" not in alt_plain and "field counts" not in caption_plain
+    assert "Marked:" in alt_plain
+
+
+def test_forecast_caption_names_the_largest_error_along_the_run(report):
+    info = report.data["trajectory_error"]
+    _, _, caption = _figure(report.html, "forecast")
+    found = re.search(
+        r"largest numerical error along the run is ([\d. ]+) (\S+) at ([\d.]+) (\w+)", caption
+    )
+    assert found, caption
+    assert float(found.group(1).replace(" ", "")) == pytest.approx(info["largest_p95"], rel=5e-3)
+    assert found.group(2) == info["unit"]
+    assert float(found.group(3)) == pytest.approx(info["at"]["value"])
+    assert found.group(4) == info["at"]["unit"]
+    data = copy.deepcopy(report.data)
+    data["trajectory_error"] = {"largest_p95": None, "at": None, "unit": "crayfish"}
+    _, _, without = _figure(render_html(data, report.budget.series, ""), "forecast")
+    assert "along the run is" not in without
+
+
+def test_better_data_section(counted, report):
+    better = counted.data["better_data"]
+    assert better is not None
+    section = re.search(r'<section[^>]*id="better-data".*?</section>', counted.html, flags=re.S)
+    assert section, "no better-data section"
+    text = _text(section.group(0))
+    assert "What better data would buy" in text
+    assert better["statement"] in text
+    for q in counted.data["quantities"]:
+        row = re.search(rf"{re.escape(q['name'])}\s+([\d. ]+) (\S+)\s+([\d. ]+) (\S+)", text)
+        assert row, q["name"]
+        now, then = (float(row.group(i).replace(" ", "")) for i in (1, 3))
+        assert now == pytest.approx(q["parameter"]["sd"], rel=5e-3)
+        assert then == pytest.approx(better["parameter_sd"][q["name"]], rel=5e-3)
+        assert row.group(2) == row.group(4) == q["unit"]
+    # Verdict details first, then what better data would buy.
+    assert counted.html.index('class="budget"') < section.start()
+    assert report.data["better_data"] is None
+    assert "What better data would buy" not in report.html
+
+
+def test_cost_of_the_step(report):
+    cost = report.data["run"]["cost"]
+    assert cost is not None
+    section = re.search(r'<section[^>]*id="cost".*?</section>', report.html, flags=re.S).group(0)
+    text = _text(section)
+    assert "Clock measurements made on this machine during this run" in text
+    runs = re.search(r"Runs per second\s+([\d. ]+) runs/s\s+([\d. ]+) runs/s", text)
+    assert runs, text
+    assert float(runs.group(1).replace(" ", "")) == pytest.approx(
+        cost["runs_per_second_at_case_step"], rel=0.05
+    )  # two significant digits
+    assert float(runs.group(2).replace(" ", "")) == pytest.approx(
+        cost["runs_per_second_at_recommended_step"], rel=0.05
+    )
+    steps = re.search(r"Steps per run\s+(\d+)\s+(\d+)", text)
+    assert (int(steps.group(1)), int(steps.group(2))) == (
+        cost["steps_per_run"]["case"],
+        cost["steps_per_run"]["recommended"],
+    )
+    ensemble = re.search(
+        r"A full ensemble[^)]*\)\s+([\d. ]+) (s|ms|µs)\s+([\d. ]+) (s|ms|µs)", text
+    )
+    scale = {"s": 1.0, "ms": 1e-3, "µs": 1e-6}
+    assert float(ensemble.group(1).replace(" ", "")) * scale[ensemble.group(2)] == pytest.approx(
+        cost["ensemble_seconds_at_case_step"], rel=0.05
+    )
+    assert float(ensemble.group(3).replace(" ", "")) * scale[ensemble.group(4)] == pytest.approx(
+        cost["ensemble_seconds_at_recommended_step"], rel=0.05
+    )
+    data = copy.deepcopy(report.data)
+    data["run"]["cost"] = None
+    html = render_html(data, report.budget.series, "", include_figures=False)
+    assert "Not measured in this run." in _text(html)
+
+
+def test_roundoff_curve_and_statement(report):
+    heading, alt, caption = _figure(report.html, "roundoff")
+    assert heading == "Round-off and the total error"
+    assert "C h^p" in caption and "D u/h" in caption
+    svg = re.search(r'<figure id="fig-roundoff">.*?</figure>', report.html, flags=re.S).group(0)
+    assert "fitted C h^p + D u/h" in svg and "measured (binary64)" in svg
+    statements = _budget_row(report.html, "Round-off, in words")
+    optimum = _budget_row(report.html, "Step of smallest total error")
+    for q, said, best in zip(report.data["quantities"], statements, optimum, strict=True):
+        assert said == q["roundoff"]["statement"]
+        assert f"{len(q['roundoff']['curve']['steps']['values'])} measured points" in alt
+        assert best.endswith(f"{q['roundoff']['curve']['crossover_step']['unit']})")
+        assert "crossover" in best
+    data = copy.deepcopy(report.data)
+    for q in data["quantities"]:
+        q["roundoff"].update(curve=None, statement=None)
+    html = render_html(data, report.budget.series, "")
+    heading, alt, _ = _figure(html, "roundoff")
+    assert heading == "Round-off" and alt.startswith("Bar chart of round-off")
+    assert all(c.startswith("not available") for c in _budget_row(html, "Round-off, in words"))
+
+
+def test_csv_companions_are_named_in_how_it_was_made(report):
+    text = element_text(report.html, "companions")
+    assert "ladder.csv" in text and "summary.csv" in text and "budget.json" in text
+    assert report.html.index("made-heading") < report.html.index('id="companions"')
+
+
+def test_new_elements_escape_hostile_strings(counted):
+    data = copy.deepcopy(counted.data)
+    q = data["quantities"][0]
+    old_name = q["name"]
+    q["name"] = HOSTILE
+    q["roundoff"]["statement"] = HOSTILE
+    data["better_data"]["statement"] = HOSTILE
+    data["better_data"]["assumption"] = HOSTILE
+    data["better_data"]["parameter_sd"][HOSTILE] = data["better_data"]["parameter_sd"].pop(old_name)
+    data["run"]["cost"]["note"] = HOSTILE
+    series = dict(counted.budget.series)
+    series["stability"] = dict(series["stability"], parameter=HOSTILE, unit="<b>u</b>")
+    html = render_html(data, series, counted.case.text)
+    assert "<script" not in html.lower() and "<b>u" not in html
+    assert html.count("&lt;script&gt;alert(9)&lt;/script&gt;") >= 5
+    page = Page(html)
+    assert {f["id"].removeprefix("fig-") for f in page.figures} == EXPECTED_FIGURES
+    _, alt, _ = _figure(html, "stability")
+    assert HOSTILE in alt  # shown as text inside the figure's title
+
+
+def test_new_elements_survive_non_finite_numbers(counted):
+    data = copy.deepcopy(counted.data)
+    for name in data["better_data"]["parameter_sd"]:
+        data["better_data"]["parameter_sd"][name] = float("nan")
+    data["better_data"]["recommended_step"]["value"] = None
+    cost = data["run"]["cost"]
+    cost.update(
+        member_steps_per_second=float("inf"),
+        runs_per_second_at_recommended_step=float("nan"),
+        ensemble_seconds_at_case_step=float("nan"),
+        ensemble_seconds_at_recommended_step=None,
+    )
+    cost["steps_per_run"]["recommended"] = None
+    for q in data["quantities"]:
+        q["roundoff"]["curve"]["C"]["value"] = float("nan")
+        q["roundoff"]["curve"]["optimum_step"]["value"] = float("inf")
+    data["trajectory_error"]["largest_p95"] = float("nan")
+    series = dict(counted.budget.series)
+    times = np.array(series["counts"]["times"], dtype=float)
+    times[0] = np.nan
+    series["counts"] = {"times": times, "counts": series["counts"]["counts"]}
+    html = render_html(data, series, counted.case.text)
+    text = _text(html)
+    assert ">nan<" not in html.lower() and " nan " not in text.lower() and " inf " not in text
+    assert "What better data would buy" in text and "Cost of the step" in text
+    _, alt, _ = _figure(html, "forecast")
+    assert f"{len(times) - 1} field counts" in alt
+    heading, _, _ = _figure(html, "roundoff")
+    assert heading == "Round-off"  # no usable fitted curve: the bar chart
+    assert "not available" in re.search(r'id="cost".*?</section>', html, flags=re.S).group(0)

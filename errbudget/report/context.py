@@ -118,6 +118,10 @@ def build(budget: dict, case_text: str) -> dict:
         "fit": sections.fit_summary(budget.get("fit")),
         "validation": sections.validation(budget.get("validation")),
         "tried": sections.step_search(budget.get("recommendation") or {}),
+        "better_data": sections.better_data(
+            budget.get("better_data"), quantities, verdict.get("recommended_step")
+        ),
+        "cost": sections.cost((budget.get("run") or {}).get("cost")),
         "provenance": _provenance(budget),
         "ladder": ", ".join(
             fmt.step(s.get("value"), None).text
@@ -282,6 +286,21 @@ def _table(quantities: list[dict], fraction) -> list[dict]:
                     ),
                     "unit round-off × steps × size",
                 ),
+                _row(
+                    "Step of smallest total error",
+                    col(lambda q: _curve_step(q, "optimum_step")),
+                    "fitted C hᵖ + D u/h (round-off overtakes below the crossover)",
+                ),
+                _row(
+                    "Round-off, in words",
+                    col(
+                        lambda q: (
+                            Cell((q.get("roundoff") or {}).get("statement"))
+                            if (q.get("roundoff") or {}).get("statement")
+                            else Cell(fmt.NOT_AVAILABLE, True, "no fitted total-error curve")
+                        )
+                    ),
+                ),
             ],
         },
         {
@@ -317,6 +336,23 @@ def _table(quantities: list[dict], fraction) -> list[dict]:
             ],
         },
     ]
+
+
+def _curve_step(q: dict, key: str) -> Cell:
+    """The optimum step of the fitted round-off curve, with the crossover beside it."""
+    curve = (q.get("roundoff") or {}).get("curve")
+    if not isinstance(curve, dict):
+        return Cell(fmt.NOT_AVAILABLE, True, "no fitted total-error curve")
+    best, cross = curve.get(key) or {}, curve.get("crossover_step") or {}
+    shown = fmt.step(best.get("value"), best.get("unit"), why="C or D is zero")
+    crossing = fmt.step(cross.get("value"), cross.get("unit"))
+    if shown.missing or crossing.missing:
+        return shown
+    return Cell(
+        f"{fmt.number(best.get('value'), 3)}{fmt.THIN_SPACE}{best.get('unit') or ''}"
+        f" (crossover {fmt.number(cross.get('value'), 3)}{fmt.THIN_SPACE}"
+        f"{cross.get('unit') or ''})"
+    )
 
 
 def _quantity_verdict(q: dict) -> Cell:

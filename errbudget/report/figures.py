@@ -14,6 +14,7 @@ from collections.abc import Callable
 import matplotlib
 import numpy as np
 
+from errbudget.report import curves
 from errbudget.report.fmt import finite, number, plain
 from errbudget.report.fmt import step as step_text
 from errbudget.report.plotting import (
@@ -37,6 +38,9 @@ from errbudget.report.plotting import (
     to_svg,
 )
 
+# a white box keeps line labels legible where they cross the ensemble band
+LABEL_BOX = {"facecolor": "white", "alpha": 0.75, "edgecolor": "none", "pad": 0.8}
+
 
 def all_figures(budget: dict, series: dict | None) -> list[Figure]:
     """Every figure of the report, in reading order."""
@@ -46,7 +50,7 @@ def all_figures(budget: dict, series: dict | None) -> list[Figure]:
         ("convergence", "Convergence with the step", lambda: convergence(budget)),
         ("forecast", "The forecast over time", lambda: forecast(budget, series)),
         ("sobol", "Which parameters drive the spread", lambda: sobol(budget)),
-        ("stability", "Stability limits of the step", lambda: stability(budget)),
+        ("stability", "Stability map of the step", lambda: stability(budget, series)),
         ("roundoff", "Round-off", lambda: roundoff(budget)),
     ]
     figures = []
@@ -302,6 +306,7 @@ def forecast(budget: dict, series: dict) -> Figure:
                 linewidth=0.9,
                 label=f"nominal parameters, case's step {step_text(step_value, unit_t).text}",
             )
+        marked = _counts_and_marks(top, budget, series, unit_t, unit_n)
         top.set_ylabel(f"population [{unit_n}]")
         top.grid(color=GRID, linewidth=0.6)
         top.legend(loc="best", fontsize=7)
@@ -346,15 +351,102 @@ def forecast(budget: dict, series: dict) -> Figure:
             "Numerical error of the case's step (95th percentile over the ensemble)", pad=4
         )
         fig.tight_layout(h_pad=0.8)
+        alt += marked["alt"]
         svg = to_svg(fig, key, alt)
     caption = (
         "Top: the spread the parameters leave in the forecast (band and median of the "
         "ensemble, solved accurately) with the nominal run at the case's step and "
-        "solved accurately; where the two nominal curves part, the step matters. "
+        "solved accurately; where the two nominal curves part, the step matters."
+        f"{marked['caption']} "
         "Bottom: how far the case's step is from the accurate solution along the run "
         "(95th percentile over the ensemble): compare its size with the band's width."
+        + _largest_error(budget)
     )
     return Figure(key, title, caption, alt, svg)
+
+
+def _counts_and_marks(ax, budget: dict, series: dict, unit_t: str, unit_n: str) -> dict:
+    """Field counts as points, each quantity's time and level as labelled lines.
+
+    Returns the sentences added to the caption and to the alt text.
+    """
+    caption, alt = "", ""
+    counts = series.get("counts") if isinstance(series.get("counts"), dict) else None
+    if counts is not None:
+        times, values = clean(counts.get("times")), clean(counts.get("counts"))
+        ok = np.isfinite(times) & np.isfinite(values) if times.shape == values.shape else None
+        if ok is not None and times.ndim == 1 and ok.any():
+            ax.plot(
+                times[ok],
+                values[ok],
+                "o",
+                markerfacecolor="white",
+                markeredgecolor=INK,
+                markersize=4,
+                label="field counts",
+                zorder=5,
+            )
+            caption += " Open circles: the field counts the parameters were fitted to."
+            alt += f" {int(ok.sum())} field counts are drawn as points."
+    lines = []
+    for q in budget.get("quantities") or []:
+        name = str(q.get("name", ""))
+        at, level = q.get("at") or {}, q.get("level") or {}
+        t = finite(at.get("value")) if isinstance(at, dict) else None
+        if t is not None and at.get("unit", unit_t) == unit_t:
+            ax.axvline(t, color=PURPLE, linestyle=(0, (5, 2)), linewidth=1)
+            ax.text(
+                t,
+                0.98,
+                f"{name} ",
+                rotation=90,
+                ha="right",
+                va="top",
+                fontsize=7,
+                color=PURPLE,
+                transform=ax.get_xaxis_transform(),
+                bbox=LABEL_BOX,
+            )
+            lines.append(f"{name} at {step_text(t, unit_t).text}")
+        n = finite(level.get("value")) if isinstance(level, dict) else None
+        if n is not None and level.get("unit", unit_n) == unit_n:
+            ax.axhline(n, color=GREEN, linestyle=(0, (5, 2)), linewidth=1)
+            ax.text(
+                0.01,
+                n,
+                f"{name}: level {plain(n, 4)} {unit_n}",
+                va="bottom",
+                fontsize=7,
+                color=GREEN,
+                transform=ax.get_yaxis_transform(),
+                bbox=LABEL_BOX,
+            )
+            lines.append(f"{name} at level {plain(n, 4)} {unit_n}")
+    if lines:
+        caption += (
+            " Dashed lines mark the forecast quantities: a vertical line at the time of a value "
+            "quantity, a horizontal line at the level a time-to quantity waits for."
+        )
+        alt += " Marked: " + "; ".join(lines) + "."
+    return {"caption": caption, "alt": alt}
+
+
+def _largest_error(budget: dict) -> str:
+    """The caption's sentence on the largest numerical error along the run, if recorded."""
+    info = budget.get("trajectory_error")
+    if not isinstance(info, dict):
+        return ""
+    largest = finite(info.get("largest_p95"))
+    at = info.get("at") or {}
+    if largest is None:
+        return ""
+    when = step_text(at.get("value"), at.get("unit")) if isinstance(at, dict) else None
+    place = f" at {when.text}" if when is not None and not when.missing else ""
+    unit = info.get("unit") or ""
+    return (
+        f" The largest numerical error along the run is {plain(largest)} {unit}".rstrip()
+        + f"{place} (95th percentile over the ensemble)."
+    )
 
 
 def sobol(budget: dict) -> Figure:
@@ -420,8 +512,11 @@ def sobol(budget: dict) -> Figure:
     return Figure(key, title, caption, alt, svg)
 
 
-def stability(budget: dict) -> Figure:
-    """The case's and recommended steps against the linear-stability step limits."""
+def stability(budget: dict, series: dict | None = None) -> Figure:
+    """The stability map when the run's series carry it, else the step limits as bars."""
+    mapped = curves.stability_map(budget, series or {})
+    if mapped is not None:
+        return mapped
     key, title = "stability", "Stability limits of the step"
     info = budget.get("stability") or {}
     unit_t = budget.get("simulation", {}).get("step", {}).get("unit", "")
@@ -482,7 +577,10 @@ def stability(budget: dict) -> Figure:
 
 
 def roundoff(budget: dict) -> Figure:
-    """Measured binary64 round-off against its bound and the discretisation error."""
+    """The fitted total-error curves when present, else round-off against its bound as bars."""
+    fitted = curves.roundoff_curves(budget)
+    if fitted is not None:
+        return fitted
     key, title = "roundoff", "Round-off"
     quantities = budget.get("quantities") or []
     if not quantities or all(

@@ -200,3 +200,89 @@ def _cell(value) -> Cell:
     if isinstance(value, bool) or not isinstance(value, float | int):
         return fmt.scalar(value)
     return fmt.with_unit(value, None, fmt.SIG_VALUE)
+
+
+def better_data(data: dict | None, quantities: list[dict], recommended: dict | None) -> dict | None:
+    """What twice the counts would change: the statement and parameter sd now vs then."""
+    if not isinstance(data, dict) or not data:
+        return None
+    then_sd = data.get("parameter_sd") if isinstance(data.get("parameter_sd"), dict) else {}
+    rows = []
+    for q in quantities:
+        name, unit = q.get("name", ""), q.get("unit")
+        if name not in then_sd:
+            continue
+        rows.append(
+            {
+                "name": name,
+                "now": fmt.with_unit((q.get("parameter") or {}).get("sd"), unit, why="undefined"),
+                "then": fmt.with_unit(then_sd.get(name), unit, why="undefined"),
+            }
+        )
+    now = recommended or {}
+    then = data.get("recommended_step") or {}
+    return {
+        "statement": data.get("statement") or "",
+        "assumption": data.get("assumption") or "",
+        "rows": rows,
+        "step_now": fmt.step(now.get("value"), now.get("unit"), why="no step qualifies"),
+        "step_then": fmt.step(then.get("value"), then.get("unit"), why="no step qualifies"),
+    }
+
+
+def _seconds(value) -> Cell:
+    """A clock time in seconds, milliseconds or microseconds, whichever reads best."""
+    x = fmt.finite(value)
+    if x is None:
+        return Cell(fmt.NOT_AVAILABLE, True)
+    for scale, unit in ((1.0, "s"), (1e-3, "ms"), (1e-6, "µs")):
+        if abs(x) >= scale or unit == "µs":
+            return fmt.with_unit(x / scale, unit, 2)
+    return fmt.with_unit(x, "s", 2)  # not reached: the loop ends on µs
+
+
+def cost(data: dict | None) -> dict | None:
+    """Runs per second and full-ensemble time at the case's and the recommended step."""
+    if not isinstance(data, dict) or not data:
+        return None
+    steps = data.get("steps_per_run") if isinstance(data.get("steps_per_run"), dict) else {}
+    throughput = fmt.finite(data.get("member_steps_per_second"))
+    case_seconds = fmt.finite(data.get("ensemble_seconds_at_case_step"))
+    case_steps = fmt.finite(steps.get("case"))
+    members = None
+    if throughput and case_seconds and case_steps:
+        members = round(throughput * case_seconds / case_steps)  # inverts how run.py sums it
+    why = "no recommended step"
+    return {
+        "rows": [
+            {
+                "label": "Steps per run",
+                "case": fmt.scalar(steps.get("case")),
+                "rec": fmt.scalar(steps.get("recommended"))
+                if steps.get("recommended") is not None
+                else Cell(fmt.NOT_AVAILABLE, True, why),
+            },
+            {
+                "label": "Runs per second",
+                "case": fmt.with_unit(data.get("runs_per_second_at_case_step"), "runs/s", 2),
+                "rec": fmt.with_unit(
+                    data.get("runs_per_second_at_recommended_step"), "runs/s", 2, why=why
+                ),
+            },
+            {
+                "label": "A full ensemble" + (f" ({members} parameter sets)" if members else ""),
+                "case": _seconds(data.get("ensemble_seconds_at_case_step")),
+                "rec": _seconds(data.get("ensemble_seconds_at_recommended_step"))
+                if fmt.finite(data.get("ensemble_seconds_at_recommended_step")) is not None
+                else Cell(fmt.NOT_AVAILABLE, True, why),
+            },
+        ],
+        "throughput": fmt.with_unit(throughput, "member steps/s", 2),
+        "note": _sentence(data.get("note")),
+    }
+
+
+def _sentence(text) -> str:
+    """A note as a sentence: capital first letter, no final full stop (the template adds it)."""
+    text = str(text or "").strip().rstrip(".")
+    return text[:1].upper() + text[1:]
