@@ -163,7 +163,9 @@ class _Reader:
     def text(self, data: dict, key: str, where: str, default: str | None = None) -> str:
         value = data.get(key, default) if default is not None else self.required(data, key, where)
         if not isinstance(value, str) or not value.strip():
-            raise self.fail(f"expected a non-empty string, got {value!r}", f"{where}.{key}")
+            raise self.fail(
+                f"expected a non-empty string, got {value!r}", f"{where}.{key}" if where else key
+            )
         return value
 
     def quantity(self, value: object, where: str, unit, meaning: str) -> float:
@@ -284,6 +286,7 @@ def load_case(path: str | Path) -> Case:
             f"({horizon:g} {format_unit(time_unit)})",
             "simulation.step",
         )
+    _check_step_count(reader, step, horizon, time_unit)
 
     params_table = reader.required(data, "parameters", "")
     if not isinstance(params_table, dict):
@@ -322,6 +325,25 @@ def load_case(path: str | Path) -> Case:
         budget=budget,
         counts=counts,
     )
+
+
+def _check_step_count(reader: _Reader, step: float, horizon: float, time_unit) -> None:
+    """Refuse a step so small that the refinement ladder could not halve it twice.
+
+    The ladder (errbudget.ladder) needs the case's step and at least two halvings, and stops
+    at ``MAX_STEPS`` steps on its finest level; a case beyond that would fail mid-run.
+    """
+    from errbudget.ladder import MAX_STEPS, RATIO  # lazy: ladder imports this module
+
+    most = MAX_STEPS // RATIO**2
+    if horizon / step > most:
+        label = format_unit(time_unit)
+        raise reader.fail(
+            f"the horizon ({horizon:g} {label}) holds {horizon / step:.3g} steps of "
+            f"{step:g} {label}; at most {most} are accepted (the refinement ladder halves the "
+            f"step twice): use a step of at least {horizon / most:.3g} {label}",
+            "simulation.step",
+        )
 
 
 def _time_quantity(reader: _Reader, value: object, where: str):
@@ -727,6 +749,8 @@ def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
             "give an absolute path to use a file elsewhere",
             "counts.file",
         )
+    if not resolved.is_file():
+        raise reader.fail(f"counts file {str(resolved)!r} not found (or not a file)", "counts.file")
     file_unit = _time_quantity(
         reader, "1 " + reader.text(table, "time_unit", "counts", default="day"), "counts.time_unit"
     )

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 import traceback
+import warnings
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -127,14 +128,23 @@ def _progress(quiet: bool, title: str):
 
 def _run_one(case, args) -> None:
     from errbudget import history
-    from errbudget.outputs import dumps, write_atomic
+    from errbudget.outputs import dumps, write_all_atomic
     from errbudget.report import render_html
     from errbudget.run import run_case
     from errbudget.tables import ladder_csv, summary_csv
 
     say, bar = _progress(args.quiet, case.path.stem)
     try:
-        budget = run_case(case, samples=args.samples, seed=args.seed, progress=say)
+        with warnings.catch_warnings():
+            # numpy's warnings on NaN or overflow are expected here: the run turns them into
+            # flags and nulls in budget.json, so they are not shown to the user.
+            warnings.simplefilter("ignore", RuntimeWarning)
+            budget = run_case(case, samples=args.samples, seed=args.seed, progress=say)
+    except InputError as error:
+        # A problem found while running (counts the observation model cannot describe) that
+        # names no file lies in the counts the run read, or else in the case.
+        source = str(case.counts.path) if case.counts is not None else str(case.path)
+        raise error.located(source) from None
     finally:
         if bar is not None:
             bar.close()
@@ -145,12 +155,18 @@ def _run_one(case, args) -> None:
     with history.locked(folder):
         line = history.entry(data, timestamp, series=budget.series)
         data["since_last"] = history.compare(history.last_entry(folder), line)
-        html = render_html(data, budget.series, case.text)
-        write_atomic(folder / "budget.json", dumps(data))
-        write_atomic(folder / "budget.html", html)
-        write_atomic(folder / "ladder.csv", ladder_csv(data))
-        write_atomic(folder / "summary.csv", summary_csv(data))
-        history.append(folder, line)
+        # Everything is rendered in memory first, then written as one set (all temporaries,
+        # then the renames), and the history line is appended last: a failure before the
+        # renames leaves the earlier outputs and history byte for byte as they were.
+        files = {
+            folder / "budget.json": dumps(data),
+            folder / "budget.html": render_html(data, budget.series, case.text),
+            folder / "ladder.csv": ladder_csv(data),
+            folder / "summary.csv": summary_csv(data),
+        }
+        history_line = history.line_text(line)
+        write_all_atomic(files)
+        history.append(folder, line, text=history_line)
     verdict = data["verdict"]
     print(f"{case.path}: {'ADEQUATE' if verdict['adequate'] else 'NOT ADEQUATE'}")
     print(f"  {verdict['reason']}")

@@ -259,9 +259,17 @@ def locked(folder: Path):
             fcntl.flock(handle, fcntl.LOCK_UN)
 
 
-def append(folder: Path, line: dict) -> None:
-    """Append one line (one write call, flushed and synced); earlier lines are untouched."""
-    text = json.dumps(line, allow_nan=False, ensure_ascii=False) + "\n"
+def line_text(line: dict) -> str:
+    """The text of one history line: strict JSON (raises ValueError on NaN or infinity)."""
+    return json.dumps(line, allow_nan=False, ensure_ascii=False) + "\n"
+
+
+def append(folder: Path, line: dict, text: str | None = None) -> None:
+    """Append one line (one write call, flushed and synced); earlier lines are untouched.
+
+    ``text`` is :func:`line_text` of ``line`` when the caller already made it.
+    """
+    text = line_text(line) if text is None else text
     with (folder / HISTORY_NAME).open("a", encoding="utf-8") as stream:
         stream.write(text)
         stream.flush()

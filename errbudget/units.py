@@ -27,6 +27,8 @@ def ensure_count_units(unit_text: str) -> None:
     pint knows (``tonne``, ``m``) keeps its meaning, so "mussel / m**2" is a density.
     """
     for name in _NAME.findall(unit_text):
+        if name.startswith("_"):  # pint's and Python's private names are never units
+            raise InputError(f'"{name}" cannot be used as a unit name (it starts with "_")')
         try:
             ureg.parse_units(name)
         except pint.errors.UndefinedUnitError:

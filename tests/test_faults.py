@@ -1,0 +1,240 @@
+"""Faults: numerical trouble never crashes or leaks NaN/inf, a failed run loses nothing,
+concurrent runs keep the history whole, runs are reproducible, user text is escaped."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from test_cli import (
+    BUILTIN,
+    COUNTS,
+    EXIT_INPUT,
+    REPO,
+    _one_error_line,
+    _strict_json,
+    _without_clock,
+)
+
+import errbudget.outputs
+import errbudget.report
+from errbudget.cli import main
+from errbudget.fitting import fit_counts
+
+QUICK = ["--samples", "16", "--quiet"]
+PERCH = REPO / "cases" / "perch-reservoir.toml"
+
+
+def _run_ok(capsys, case: Path, out: Path, *extra: str) -> dict:
+    assert main(["run", str(case), "--out", str(out), *QUICK, *extra]) == 0
+    captured = capsys.readouterr()
+    assert captured.err == "", captured.err  # no warnings or tracebacks leak to the user
+    return _strict_json((out / case.stem / "budget.json").read_text(encoding="utf-8"))
+
+
+def _all_numbers_finite(value) -> bool:
+    if isinstance(value, dict):
+        return all(_all_numbers_finite(v) for v in value.values())
+    if isinstance(value, list):
+        return all(_all_numbers_finite(v) for v in value)
+    if isinstance(value, float):
+        return bool(np.isfinite(value))
+    return True
+
+
+# --------------------------------------------------------------------- numerical faults
+
+
+def test_overflow_at_an_unstable_step_is_flagged_not_crashed(capsys, tmp_path):
+    # r h = 350: explicit Euler blows up at the case's step (overflow to inf).
+    case = tmp_path / "pond.toml"
+    case.write_text(
+        BUILTIN.replace(
+            'r  = { value = "0.06 / day", sd = "0.01 / day" }',
+            'r  = { value = "50 / day", sd = "1 / day" }',
+        )
+    )
+    data = _run_ok(capsys, case, tmp_path / "out")
+    assert "divergence" in [flag["code"] for flag in data["flags"]]
+    assert _all_numbers_finite(data)
+
+
+def test_fit_that_fails_falls_back_to_the_prior_spread(capsys, tmp_path):
+    # All-zero counts: the Poisson likelihood drives r, K and N0 off towards 0 or infinity.
+    (tmp_path / "marsh-counts.csv").write_text("day,count\n0,0\n28,0\n56,0\n84,0\n112,0\n")
+    case = tmp_path / "pond.toml"
+    case.write_text(COUNTS)
+    data = _run_ok(capsys, case, tmp_path / "out")
+    failed = [flag for flag in data["flags"] if flag["code"] == "fit-failed"]
+    assert len(failed) == 1
+    assert "prior spread" in failed[0]["message"]
+    assert data["fit"]["converged"] is False
+    assert _all_numbers_finite(data)
+    history = (tmp_path / "out" / "pond" / "history.jsonl").read_text().splitlines()
+    assert len(history) == 1 and _strict_json(history[0])
+
+
+def test_singular_information_falls_back_to_the_bootstrap():
+    # mu = a b: only the product is determined, so the observed information is singular.
+    counts = np.array([95.0, 110.0, 102.0, 98.0, 105.0])
+    times = np.arange(counts.size, dtype=float)
+
+    def simulate(theta):
+        theta = np.atleast_2d(theta)
+        return np.repeat((theta[:, 0] * theta[:, 1])[:, None], times.size, axis=1)
+
+    result = fit_counts(simulate, ("a", "b"), [10.0, 10.0], times, counts, n_bootstrap=20)
+    assert "bootstrap" in result.message, result.message
+    assert result.uncertainty_method in ("parametric bootstrap", "none")
+    if result.cov is not None:
+        assert np.isfinite(result.cov).all()
+
+
+# --------------------------------------------------------------------- nothing lost
+
+
+def _earlier_outputs(capsys, tmp_path) -> tuple[Path, Path, dict[str, bytes]]:
+    case = tmp_path / "pond.toml"
+    case.write_text(BUILTIN)
+    out = tmp_path / "out"
+    _run_ok(capsys, case, out)
+    folder = out / "pond"
+    return case, out, {p.name: p.read_bytes() for p in folder.iterdir()}
+
+
+def _assert_unchanged(folder: Path, before: dict[str, bytes]) -> None:
+    assert {p.name: p.read_bytes() for p in folder.iterdir()} == before
+
+
+def test_failed_rendering_leaves_earlier_outputs(capsys, tmp_path, monkeypatch):
+    case, out, before = _earlier_outputs(capsys, tmp_path)
+    assert {"budget.json", "budget.html", "history.jsonl"} <= set(before)
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("renderer broke")
+
+    monkeypatch.setattr(errbudget.report, "render_html", broken)
+    assert main(["run", str(case), "--out", str(out), *QUICK]) == 1
+    assert "internal error" in capsys.readouterr().err
+    _assert_unchanged(out / "pond", before)
+
+
+@pytest.mark.parametrize("failing_call", [1, 2])
+def test_failed_write_leaves_the_earlier_set(capsys, tmp_path, monkeypatch, failing_call):
+    # Before the fix, budget.json was renamed into place before budget.html was written, so
+    # a failure on the second file left a new budget.json beside an old budget.html.
+    case, out, before = _earlier_outputs(capsys, tmp_path)
+    real = errbudget.outputs.tempfile.mkstemp
+    calls = []
+
+    def flaky(*args, **kwargs):
+        calls.append(1)
+        if len(calls) == failing_call + 1:  # the (n+1)-th temporary of the new run
+            raise OSError(28, "No space left on device")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(errbudget.outputs.tempfile, "mkstemp", flaky)
+    assert main(["run", str(case), "--out", str(out), *QUICK]) == 1
+    capsys.readouterr()
+    _assert_unchanged(out / "pond", before)  # also: no temporary left behind
+
+
+def test_failed_rename_leaves_the_earlier_set(capsys, tmp_path, monkeypatch):
+    case, out, before = _earlier_outputs(capsys, tmp_path)
+    real = os.replace
+
+    def broken_second(src, dst):
+        if str(dst).endswith("budget.html"):
+            raise OSError(5, "Input/output error")
+        return real(src, dst)
+
+    monkeypatch.setattr(errbudget.outputs.os, "replace", broken_second)
+    assert main(["run", str(case), "--out", str(out), *QUICK]) == 1
+    capsys.readouterr()
+    # budget.json is renamed first in the set, so it may be new; this is the documented
+    # window of write_all_atomic. The history is appended only after all renames.
+    after = {p.name: p.read_bytes() for p in (out / "pond").iterdir()}
+    assert after["history.jsonl"] == before["history.jsonl"]
+    assert after["budget.html"] == before["budget.html"]
+    assert not [name for name in after if name.endswith(".tmp")]
+
+
+def _subprocess_run(args: list[str], cwd: Path) -> subprocess.Popen:
+    env = dict(os.environ)
+    env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(REPO), env.get("PYTHONPATH")]))
+    return subprocess.Popen(
+        [sys.executable, "-m", "errbudget", *args],
+        cwd=cwd,
+        env=env,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        stdin=subprocess.DEVNULL,
+        text=True,
+    )
+
+
+def test_two_concurrent_runs_append_two_whole_history_lines(tmp_path):
+    (tmp_path / "pond.toml").write_text(BUILTIN)
+    args = ["run", "pond.toml", "--out", "out", *QUICK]
+    runs = [_subprocess_run(args, tmp_path) for _ in range(2)]
+    for run in runs:
+        _, err = run.communicate(timeout=180)
+        assert run.returncode == 0, err
+    lines = (tmp_path / "out" / "pond" / "history.jsonl").read_text().splitlines()
+    assert len(lines) == 2
+    assert all(_strict_json(line)["schema"] == "errbudget.history/1" for line in lines)
+    _strict_json((tmp_path / "out" / "pond" / "budget.json").read_text())
+
+
+# --------------------------------------------------------------------- reproducibility
+
+
+def test_counts_case_is_reproducible_bit_for_bit(capsys, tmp_path):
+    out_a, out_b = tmp_path / "a", tmp_path / "b"
+    for out in (out_a, out_b):
+        assert main(["run", str(PERCH), "--out", str(out), "--samples", "64", "--quiet"]) == 0
+    capsys.readouterr()
+    first, second = (
+        _strict_json((out / PERCH.stem / "budget.json").read_text()) for out in (out_a, out_b)
+    )
+    assert first["fit"] is not None
+    # json round trip keeps every float's 17 significant digits: equality is bit for bit.
+    assert _without_clock(first) == _without_clock(second)
+
+
+# --------------------------------------------------------------------- hostile text
+
+HOSTILE = "<img src=x onerror=alert(1)>"
+
+
+def test_report_escapes_title_and_quantity_name(capsys, tmp_path):
+    case = tmp_path / "pond.toml"
+    text = BUILTIN.replace(
+        '"Upper marsh crayfish pond, autumn harvest plan"', json.dumps(HOSTILE)
+    ).replace('name = "stock at harvest"', f"name = {json.dumps(HOSTILE + ' q')}")
+    case.write_text(text)
+    data = _run_ok(capsys, case, tmp_path / "out")
+    assert data["case"]["title"] == HOSTILE
+    page = (tmp_path / "out" / "pond" / "budget.html").read_text(encoding="utf-8")
+    assert "<img" not in page.lower()
+    assert "&lt;img src=x onerror=alert(1)&gt;" in page
+
+
+def test_counts_symlink_out_of_the_case_folder_is_refused(capsys, tmp_path):
+    outside = tmp_path / "elsewhere"
+    outside.mkdir()
+    (outside / "secret.csv").write_text("day,count\n0,1\n1,2\n2,3\n")
+    folder = tmp_path / "case"
+    folder.mkdir()
+    (folder / "marsh-counts.csv").symlink_to(outside / "secret.csv")
+    case = folder / "pond.toml"
+    case.write_text(COUNTS)
+    assert main(["check", str(case)]) == EXIT_INPUT
+    line = _one_error_line(capsys)
+    assert line.startswith(f"errbudget: error: {case}, counts.file: "), line
+    assert "must stay inside the case's folder" in line
