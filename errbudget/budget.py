@@ -120,9 +120,11 @@ def recommend(
 
 
 def plain_step(step: float) -> str:
-    """1.75 -> '1.75', 0.4375 -> '7/16' (readable step values for sentences)."""
+    """1.75 -> '1.75', 3.5 -> '3.5', 0.4375 -> '7/16' (readable step values for sentences)."""
     if float(step).is_integer():
         return str(int(step))
+    if abs(round(step, 3) - step) < 1e-12:
+        return f"{round(step, 3):g}"
     fraction = Fraction(step).limit_denominator(4096)
     if abs(float(fraction) - step) < 1e-12 and fraction.denominator <= 64:
         return f"{fraction.numerator}/{fraction.denominator}"

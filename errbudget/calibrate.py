@@ -8,16 +8,15 @@ estimates.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from errbudget.case import Case
 from errbudget.counts import Counts, read_counts
-from errbudget.ensemble import n_steps_for
+from errbudget.ensemble import solve
 from errbudget.fitting import FitResult, fit_counts
-from errbudget.quantities import Trajectory
-from errbudget.schemes import SCHEMES, integrate
+from errbudget.schemes import SCHEMES
 from errbudget.spread import JointNormal
 
 FIT_TOLERANCE = 1e-8  # relative change at the count times accepted from halving the step
@@ -67,12 +66,10 @@ def simulator(case: Case, names: tuple[str, ...], times: np.ndarray):
         return exact, "closed-form solution"
 
     rk4 = SCHEMES["rk4"]
+    to_end = replace(case, horizon=end)
 
     def solve_at(theta: np.ndarray, step: float) -> np.ndarray:
-        p = params_for(theta)
-        law = {k: v for k, v in p.items() if k != "N0"}
-        states = integrate(case.model.rate, p["N0"], law, step, n_steps_for(end, step), rk4)
-        traj = Trajectory(states, step, end, case.model.rate, law)
+        traj = solve(to_end, params_for(theta), step, scheme=rk4)  # compiled where possible
         return np.stack([traj.value_at(t)[0] for t in times], axis=1)
 
     step = min(case.step, end / 8)

@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import linalg, optimize
@@ -51,6 +51,7 @@ NM_ITERATIONS_PER_DIM = 400  # Nelder-Mead iteration budget per estimated quanti
 NB_DRAW_LIMIT = 1e12  # numpy's negative binomial sampler fails for huge k; this is Poisson
 PENALTY = 1e100  # finite stand-in for an infinite -ln L, so that line searches stay defined
 INTEGER_TOLERANCE = 1e-6  # Poisson / negative binomial counts must be whole numbers to this
+BOOTSTRAP_SOLVES = 100_000  # parameter sets solved by all bootstrap refits together, at most
 MIN_BOOTSTRAP_FRACTION = 0.5  # fewer successful refits than this share: no bootstrap estimate
 _HALF_LN_2PI = 0.5 * math.log(2.0 * math.pi)
 
@@ -172,6 +173,8 @@ class _Problem:
     error: str
     log_scale: np.ndarray  # (k,) bool
     n_nuisance: int
+    # Parameter sets solved so far, shared by copies made with dataclasses.replace.
+    solved: list = field(default_factory=lambda: [0])
 
     @property
     def k(self) -> int:
@@ -186,6 +189,7 @@ class _Problem:
 
     def model(self, theta: np.ndarray) -> np.ndarray:
         """Model values (S, T); an arithmetic failure of the solver gives NaN rows."""
+        self.solved[0] += theta.shape[0]
         with np.errstate(all="ignore"):
             try:
                 mu = np.asarray(self.simulate(theta), dtype=float)
@@ -418,19 +422,26 @@ def _bootstrap(
     if n < 2 or not np.all(np.isfinite(mu)) or np.any(mu < 0):
         return None, "no parametric bootstrap was possible"
     estimates = []
+    stop_at = problem.solved[0] + BOOTSTRAP_SOLVES
+    tried = 0
     for counts in _draw(problem.error, mu, phi[0], rng, n):
+        if problem.solved[0] > stop_at:
+            break  # deterministic work cap: the same data give the same number of refits
+        tried += 1
         if problem.error == "lognormal" and np.any(counts <= 0):
             continue
         refit, value, nm_ok, polish_ok = _optimise(replace(problem, y=counts), [z], restart=False)
         if np.isfinite(value) and (nm_ok or polish_ok):
             estimates.append(refit[: problem.k])
-    needed = max(problem.k + 2, math.ceil(MIN_BOOTSTRAP_FRACTION * n))
+    needed = max(problem.k + 2, math.ceil(MIN_BOOTSTRAP_FRACTION * tried))
+    capped = f" (stopped after {tried} of {n}: work cap)" if tried < n else ""
     if len(estimates) < needed:
         return None, (
-            f"only {len(estimates)} of {n} bootstrap refits converged (at least {needed} needed)"
+            f"only {len(estimates)} of {tried} bootstrap refits converged (at least {needed} "
+            f"needed){capped}"
         )
     cov = np.atleast_2d(np.cov(np.array(estimates), rowvar=False))
-    return cov, f"{len(estimates)} of {n} bootstrap refits converged"
+    return cov, f"{len(estimates)} of {tried} bootstrap refits converged{capped}"
 
 
 def _pearson(error: str, y: np.ndarray, mu: np.ndarray, phi: np.ndarray) -> np.ndarray:

@@ -95,6 +95,50 @@ def test_singular_information_falls_back_to_the_bootstrap():
         assert np.isfinite(result.cov).all()
 
 
+SINGULAR = """\
+title = "Only the product a b is identifiable"
+[model]
+form = "custom"
+unit = "fish"
+rate = "a*b*N*(1 - N/K)"
+[parameters]
+a = { value = "0.2 / day", sd = "0.05 / day" }
+b = { value = "1", sd = "0.1" }
+K = "1000 fish"
+N0 = "50 fish"
+[simulation]
+scheme = "rk4"
+step = "1 day"
+horizon = "40 day"
+[[quantity]]
+name = "fish on day 30"
+kind = "value"
+at = "30 day"
+[counts]
+file = "counts.csv"
+error = "poisson"
+fit = ["a", "b"]
+"""
+
+
+def test_singular_information_through_the_cli_uses_the_bootstrap(capsys, tmp_path):
+    # Fitting a and b of a custom law in which only their product matters: the observed
+    # information matrix is singular, so the uncertainty must come from the bootstrap, the
+    # run must finish (a work cap bounds the refits) and the budget stay finite.
+    case = tmp_path / "singular.toml"
+    case.write_text(SINGULAR)
+    times = np.arange(0.0, 40.0, 4.0)
+    mu = 1000 / (1 + (1000 / 50 - 1) * np.exp(-0.2 * times))
+    counts = np.random.default_rng(1).poisson(mu)
+    (tmp_path / "counts.csv").write_text(
+        "time,count\n" + "".join(f"{t:g},{c}\n" for t, c in zip(times, counts, strict=True))
+    )
+    data = _run_ok(capsys, case, tmp_path / "out")
+    assert data["fit"]["uncertainty_method"] == "parametric bootstrap"
+    assert "bootstrap" in data["fit"]["message"]
+    assert _all_numbers_finite(data)
+
+
 # --------------------------------------------------------------------- nothing lost
 
 
