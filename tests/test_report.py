@@ -777,3 +777,13 @@ def test_new_elements_survive_non_finite_numbers(counted):
     heading, _, _ = _figure(html, "roundoff")
     assert heading == "Round-off"  # no usable fitted curve: the bar chart
     assert "not available" in re.search(r'id="cost".*?</section>', html, flags=re.S).group(0)
+
+
+def test_fitted_parameters_are_said_to_be_analysed_as_one_group(counted, report):
+    assert "fitted" in counted.data["quantities"][0]["parameter"]["indices"]
+    _, _, caption = _figure(counted.html, "sobol")
+    assert "analysed as one group" in caption
+    for name in counted.data["fit"]["parameters"]:
+        assert name in caption
+    _, _, plain_caption = _figure(report.html, "sobol")
+    assert "analysed as one group" not in plain_caption  # no fit, no group

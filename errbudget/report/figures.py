@@ -509,6 +509,14 @@ def sobol(budget: dict) -> Figure:
         "Better data on the inputs with the largest total index narrow the forecast "
         "most; inputs near zero could be fixed."
     )
+    fitted = list((budget.get("fit") or {}).get("parameters") or {})
+    grouped = any("fitted" in (q.get("parameter") or {}).get("indices", {}) for q in quantities)
+    if fitted and grouped:
+        caption += (
+            f" The parameters fitted to the counts ({', '.join(fitted)}) are correlated "
+            'through the fit, so they are analysed as one group, "fitted", not as '
+            "independent inputs."
+        )
     return Figure(key, title, caption, alt, svg)
 
 
