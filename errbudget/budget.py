@@ -214,7 +214,7 @@ def assemble(
         numerical = None if pct is None else pct + (round_error or 0.0)
         sd = spreads[q]["sd"]
         ratio = numerical / sd if numerical is not None and sd else None
-        gci_case = _case_gci(case_gci, column)
+        gci_case = _case_gci(case_gci, column, scheme.order)
         quantities.append(
             {
                 "name": spec.name,
@@ -428,19 +428,20 @@ def _richardson_nominal(column: np.ndarray, order: int) -> float | None:
     return float(fine + (fine - coarse) / (2.0**order - 1))
 
 
-def _case_gci(result, column) -> float | None:
+def _case_gci(result, column, formal: int) -> float | None:
     """Roache's GCI of the case's (coarse) level from the triplet h, h/2, h/4 [unit].
 
     GCI_coarse = Fs |phi_h - phi_{h/2}| r^p / (r^p - 1) (Roache 1998, Verification and
-    Validation in Computational Science and Engineering, Hermosa, ch. 5).
+    Validation in Computational Science and Engineering, Hermosa, ch. 5). With a trusted
+    observed order p is that order and Fs 1.25; otherwise p is the formal order and Fs 3
+    (the factor ``grid_convergence`` chose).
     """
     if result is None or result.behaviour == "divergent":
         return None
     if result.behaviour == "exact":
         return 0.0
-    order = result.observed_order if result.order_trusted else None
-    if order is None:
-        return None
+    trusted = result.order_trusted and result.observed_order is not None
+    order = result.observed_order if trusted else formal
     r_p = 2.0**order
     return float(result.safety_factor * abs(column[0] - column[1]) * r_p / (r_p - 1))
 
