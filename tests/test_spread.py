@@ -50,7 +50,7 @@ def ishigami_result():
     [
         # Ishigami & Homma 1990; analytic values in Sobol' & Levitan 1999, Comput. Phys.
         # Commun. 117:52, and Saltelli et al. 2008, Global Sensitivity Analysis: The Primer
-        # (as listed in /work/shared/CHECKS.md, "Sensitivity indices").
+        # (as listed in the shared CHECKS.md, "Sensitivity indices").
         ("x1", 0.3139, 0.5576),
         ("x2", 0.4424, 0.4424),
         ("x3", 0.0, 0.2437),
