@@ -109,14 +109,46 @@ def recommend(
             half = judge_step(case, evaluated[step / 2], reference, step / 2, spreads, scale)
             if half["adequate"]:
                 return {"step": step, "half_check": half, "tried": tried, "reason": None}
-    finest_tried = tried[-1]["step"] if tried else None
     reason = (
-        f"no candidate step down to {with_unit(f'{finest_tried:g}', finest_tried, case.time_unit)}"
-        " meets the rule"
+        _why_none(case, tried, spreads, reference, scale)
         if tried
-        else "the horizon is too short for any candidate step"
+        else ("the horizon is too short for any candidate step; lengthen it or give a finer step")
     )
     return {"step": None, "half_check": None, "tried": tried, "reason": reason}
+
+
+def _why_none(case: Case, tried: list[dict], spreads, reference, scale: float) -> str:
+    """Why no candidate qualifies, and what would change that."""
+    finest = tried[-1]["step"]
+    finest_text = with_unit(f"{finest:g}", finest, case.time_unit)
+    start = f"no candidate step down to {finest_text} meets the rule"
+    for q, spec in enumerate(case.quantities):
+        sd = spreads[q]["sd"] or 0.0
+        if sd <= 0:
+            return (
+                f'{start}: "{spec.name}" has no parameter spread, so it leaves no allowance '
+                "for numerical error; make an input it depends on uncertain, or drop it "
+                "from the budget"
+            )
+        n_steps = n_steps_for(case.horizon, finest)
+        size = float(np.nanmax(np.abs(reference[q]))) if spec.kind == "time-to" else scale
+        if n_steps * UNIT_ROUNDOFF[np.float64] * size > case.budget.fraction * sd:
+            return (
+                f'{start}: round-off would dominate "{spec.name}" before the '
+                "discretisation error is small enough; raise [budget] fraction or accept "
+                "a wider allowance"
+            )
+    judged = [t for t in tried if t.get("worst_ratio") is not None]
+    if judged and all(t["artefacts"] for t in judged):
+        return (
+            f"{start}: every candidate shows artefacts ("
+            f"{', '.join(sorted({a for t in judged for a in t['artefacts']}))}); check the "
+            "law and its parameters"
+        )
+    return (
+        f"{start}: the adequate step is finer than the reference levels reach; raise "
+        "[budget] memory_limit, shorten the horizon, or raise [budget] fraction"
+    )
 
 
 def plain_step(step: float) -> str:
@@ -136,7 +168,7 @@ TIME_WORDS = ("second", "minute", "hour", "day", "week", "month", "year")
 
 def with_unit(text: str, value: float, unit: str) -> str:
     """'7' and 'day' -> '7 days' in sentences (time words only; counts keep their name)."""
-    plural = unit in TIME_WORDS and value != 1
+    plural = unit in TIME_WORDS and value > 1
     return f"{text} {unit}s" if plural else f"{text} {unit}"
 
 
