@@ -115,22 +115,6 @@ def parse_quantity(text: object, where: str) -> pint.Quantity:
     return value
 
 
-def to_float(quantity: pint.Quantity, unit: pint.Unit | str, where: str, meaning: str) -> float:
-    """Magnitude of ``quantity`` in ``unit``; a dimension mismatch is an :class:`InputError`.
-
-    ``meaning`` says what the value is ("a growth rate") for the message.
-    """
-    target = ureg.Unit(unit) if isinstance(unit, str) else unit
-    try:
-        return float(quantity.to(target).magnitude)
-    except pint.errors.DimensionalityError:
-        raise InputError(
-            f'"{quantity:~P}" has the wrong dimension for {meaning}: expected something '
-            f'convertible to "{format_unit(target)}"',
-            where=where,
-        ) from None
-
-
 def format_unit(unit: pint.Unit | str) -> str:
     """A short, readable unit label (``1 / day``, ``mussel / m²``)."""
     unit = ureg.Unit(unit) if isinstance(unit, str) else unit
