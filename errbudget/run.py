@@ -142,6 +142,7 @@ def run_case(
 
     say("parameter spread and Sobol indices")
     spreads, indices = _spreads(case, design, reference, iid, seed)
+    flags.extend(_unsettled_indices(case, indices))
     drivers = _drivers(errors, sampled, design)
     say("round-off")
     rounding = roundoff.measure(case, case.step)
@@ -210,6 +211,27 @@ def _check_memory(case: Case, rows: int, finest_step: float) -> None:
             str(case.path),
             "budget.samples",
         )
+
+
+def _unsettled_indices(case: Case, indices: list[dict]) -> list[dict]:
+    """A flag when the Sobol indices moved between half and full sample (raise samples)."""
+    unsettled = [
+        (spec.name, found["_convergence"]["advice"])
+        for spec, found in zip(case.quantities, indices, strict=True)
+        if found.get("_convergence", {}).get("agree") is False
+    ]
+    if not unsettled:
+        return []
+    names = ", ".join(f'"{name}"' for name, _ in unsettled)
+    return [
+        {
+            "code": "indices-unsettled",
+            "message": (
+                f"the Sobol indices of {names} changed between the half and the full sample beyond "
+                f"their intervals: {unsettled[0][1]}"
+            ),
+        }
+    ]
 
 
 def _spreads(case: Case, design, reference, iid, seed) -> tuple[list[dict], list[dict]]:
