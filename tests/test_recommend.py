@@ -44,16 +44,11 @@ seed = 5
 
 
 @pytest.fixture(scope="module")
-def known():
-    folder = pytest.importorskip("pathlib").Path(__file__).parent / "_recommend_case"
-    folder.mkdir(exist_ok=True)
-    path = folder / "logistic-euler.toml"
+def known(tmp_path_factory):
+    path = tmp_path_factory.mktemp("known") / "logistic-euler.toml"
     path.write_text(CASE, encoding="utf-8")
     case = errbudget.load_case(path)
-    data = errbudget.run_case(case).to_dict()
-    path.unlink()
-    folder.rmdir()
-    return case, data
+    return case, errbudget.run_case(case).to_dict()
 
 
 def _true_ratio(case, step: float) -> float:
