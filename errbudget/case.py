@@ -8,7 +8,6 @@ the unit the value was written in), and every time is in T, the unit of the case
 from __future__ import annotations
 
 import hashlib
-import math
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
@@ -16,8 +15,10 @@ from pathlib import Path
 import numpy as np
 
 from errbudget import models
-from errbudget.distributions import KINDS, Distribution
+from errbudget.case_reader import CaseReader
+from errbudget.distributions import Distribution
 from errbudget.errors import InputError, did_you_mean
+from errbudget.parameters import Parameter, builtin_parameters, custom_model
 from errbudget.schemes import get_scheme
 from errbudget.units import (
     check_population_unit,
@@ -36,35 +37,9 @@ QUANTITY_KINDS = ("value", "time-to", "peak", "minimum")
 BUDGET_KEYS = ("fraction", "samples", "seed", "percentile", "level", "memory_limit")
 COUNTS_KEYS = ("file", "time", "time_unit", "count", "error", "fit", "start")
 ERROR_MODELS = ("poisson", "negative-binomial", "lognormal", "normal")
-TABLE_KEYS = ("value", "sd", "cv", "low", "high", "mode", "dist")
 MAX_CASE_BYTES = 1_000_000  # a case file is a few kilobytes; refuse anything absurd
 MIN_SAMPLES = 16  # smallest Sobol base sample (see spread.MIN_BASE_SAMPLES)
 DEFAULT_MEMORY_LIMIT_MB = 4096  # resource ceiling for one run, overridable per case
-
-# Parameters that must be strictly positive, by name, for the built-in laws.
-POSITIVE = {
-    "K": "a carrying capacity",
-    "N0": "an initial population",
-    "A": "an Allee threshold",
-    "theta": "a shape exponent",
-}
-NON_NEGATIVE = {"E": "a harvest rate", "H": "a removal rate"}
-
-
-@dataclass(frozen=True)
-class Parameter:
-    """One model input: fixed (``dist`` None) or uncertain.
-
-    ``nominal`` and the distribution are in ``unit`` (see module docstring); ``to_coherent``
-    is the factor to the registry's root units, used only by custom laws.
-    """
-
-    name: str
-    nominal: float
-    unit: str
-    given: str
-    dist: Distribution | None
-    to_coherent: float = 1.0
 
 
 @dataclass(frozen=True)
@@ -133,83 +108,6 @@ class Case:
         return {name: p.dist for name, p in self.parameters.items() if p.dist is not None}
 
 
-class _Reader:
-    """Reads one case file; every error names the file and the key."""
-
-    def __init__(self, path: Path):
-        self.path = path
-        self.source = str(path)
-
-    def fail(self, message: str, where: str | None = None) -> InputError:
-        return InputError(message, self.source, where)
-
-    def table(self, data: object, where: str, allowed: tuple[str, ...]) -> dict:
-        if not isinstance(data, dict):
-            raise self.fail(f"expected a table, got {type(data).__name__}", where)
-        for key in data:
-            if key not in allowed:
-                raise self.fail(
-                    f"unknown key {key!r}{did_you_mean(key, allowed)}; accepted: "
-                    + ", ".join(allowed),
-                    f"{where}.{key}" if where else key,
-                )
-        return data
-
-    def required(self, data: dict, key: str, where: str):
-        if key not in data:
-            raise self.fail(f"missing required key {key!r}", f"{where}.{key}" if where else key)
-        return data[key]
-
-    def text(self, data: dict, key: str, where: str, default: str | None = None) -> str:
-        value = data.get(key, default) if default is not None else self.required(data, key, where)
-        if not isinstance(value, str) or not value.strip():
-            raise self.fail(
-                f"expected a non-empty string, got {value!r}", f"{where}.{key}" if where else key
-            )
-        return value
-
-    def quantity(self, value: object, where: str, unit, meaning: str) -> float:
-        try:
-            parsed = parse_quantity(value, where)
-            return float(parsed.to(unit).magnitude)
-        except InputError as error:
-            raise error.located(self.source, where) from None
-        except Exception:  # pint's DimensionalityError and relatives
-            raise self.fail(
-                f"{value!r} has the wrong dimension for {meaning}: expected something "
-                f'convertible to "{format_unit(unit)}"',
-                where,
-            ) from None
-
-    def number(
-        self,
-        data: dict,
-        key: str,
-        where: str,
-        default,
-        low=None,
-        high=None,
-        integer=False,
-        low_open=True,
-        accepted="",
-    ):
-        value = data.get(key, default)
-        full = f"{where}.{key}"
-        if (
-            isinstance(value, bool)
-            or not isinstance(value, int | float)
-            or (integer and not isinstance(value, int))
-        ):
-            kind = "an integer" if integer else "a number"
-            raise self.fail(f"expected {kind}, got {value!r}{accepted}", full)
-        if not math.isfinite(value):
-            raise self.fail(f"expected a finite number, got {value!r}", full)
-        too_low = low is not None and (value <= low if low_open else value < low)
-        if too_low or (high is not None and value > high):
-            raise self.fail(f"{value!r} is out of range{accepted}", full)
-        return value
-
-
 def load_case(path: str | Path) -> Case:
     """Read, validate and convert a case file.
 
@@ -228,7 +126,7 @@ def load_case(path: str | Path) -> Case:
         Naming the file, the key (or TOML line) and what would be accepted.
     """
     path = Path(path)
-    reader = _Reader(path)
+    reader = CaseReader(path)
     try:
         raw_bytes = path.read_bytes()
     except FileNotFoundError:
@@ -294,7 +192,7 @@ def load_case(path: str | Path) -> Case:
 
     rate_text = model_table.get("rate")
     if form == "custom":
-        model, parameters = _custom_model(reader, rate_text, params_table, population, time_unit)
+        model, parameters = custom_model(reader, rate_text, params_table, population, time_unit)
     else:
         if rate_text is not None:
             raise reader.fail('"rate" is only used with form = "custom"', "model.rate")
@@ -302,7 +200,7 @@ def load_case(path: str | Path) -> Case:
             model = models.built_in(form)
         except InputError as error:
             raise error.located(reader.source) from None
-        parameters = _builtin_parameters(reader, model, params_table, population, time_unit)
+        parameters = builtin_parameters(reader, model, params_table, population, time_unit)
 
     quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon)
     budget = _budget(reader, data.get("budget", {}))
@@ -327,7 +225,7 @@ def load_case(path: str | Path) -> Case:
     )
 
 
-def _check_step_count(reader: _Reader, step: float, horizon: float, time_unit) -> None:
+def _check_step_count(reader: CaseReader, step: float, horizon: float, time_unit) -> None:
     """Refuse a step so small that the refinement ladder could not halve it twice.
 
     The ladder (errbudget.ladder) needs the case's step and at least two halvings, and stops
@@ -346,7 +244,7 @@ def _check_step_count(reader: _Reader, step: float, horizon: float, time_unit) -
         )
 
 
-def _time_quantity(reader: _Reader, value: object, where: str):
+def _time_quantity(reader: CaseReader, value: object, where: str):
     try:
         q = parse_quantity(value, where)
     except InputError as error:
@@ -354,249 +252,6 @@ def _time_quantity(reader: _Reader, value: object, where: str):
     if q.dimensionality != ureg.day.dimensionality:
         raise reader.fail(f'{value!r} is not a time: give it with a unit such as "7 day"', where)
     return q
-
-
-def _builtin_parameters(reader, model, table, population, time_unit) -> dict[str, Parameter]:
-    expected = ("N0", *model.parameter_names)
-    for name in table:
-        if name not in expected:
-            raise reader.fail(
-                f"{model.form!r} has no parameter {name!r}{did_you_mean(name, expected)}; "
-                "its parameters are " + ", ".join(expected),
-                f"parameters.{name}",
-            )
-    units = {
-        models.RATE: ureg.dimensionless / time_unit,
-        models.POPULATION: population,
-        models.FLUX: population / time_unit,
-        models.PURE: ureg.dimensionless,
-    }
-    meanings = {
-        models.RATE: "a rate (per time)",
-        models.POPULATION: "a population level",
-        models.FLUX: "a flux (population per time)",
-        models.PURE: "a pure number",
-    }
-    parameters = {}
-    for name in expected:
-        where = f"parameters.{name}"
-        if name not in table:
-            raise reader.fail(f"missing parameter {name!r} of the {model.form!r} law", where)
-        kind = models.POPULATION if name == "N0" else model.kinds[name]
-        parameters[name] = _parameter(reader, name, table[name], units[kind], meanings[kind])
-        _check_sign(reader, parameters[name], where)
-    return parameters
-
-
-def _custom_model(reader, rate_text, table, population, time_unit):
-    from errbudget import expr  # custom laws only; keeps built-in runs light
-
-    if not isinstance(rate_text, str):
-        raise reader.fail(
-            'form = "custom" needs a rate expression, e.g. rate = "r*N*(1 - N/K)"', "model.rate"
-        )
-    try:
-        used = expr.names_in(rate_text)
-    except InputError as error:
-        raise error.located(reader.source, "model.rate") from None
-    allowed = tuple(name for name in table if name != "N0")
-    for name in sorted(used):
-        if name not in table:
-            raise reader.fail(
-                f"the rate uses {name!r}, which is not in [parameters]"
-                f"{did_you_mean(name, allowed)}",
-                "model.rate",
-            )
-    if "N0" not in table:
-        raise reader.fail("missing parameter 'N0' (the initial population)", "parameters.N0")
-    for name in allowed:
-        if name not in used:
-            raise reader.fail(
-                f"parameter {name!r} is not used by the rate expression", f"parameters.{name}"
-            )
-    try:
-        expression = expr.parse_rate(rate_text, allowed)
-    except InputError as error:
-        raise error.located(reader.source, "model.rate") from None
-
-    parameters = {"N0": _parameter(reader, "N0", table["N0"], population, "a population level")}
-    _check_sign(reader, parameters["N0"], "parameters.N0")
-    for name in allowed:
-        given_unit = _given_unit(reader, name, table[name])
-        parameters[name] = _parameter(reader, name, table[name], given_unit, "this parameter")
-    units = {"N": population, "t": time_unit}
-    units.update(
-        {
-            name: ureg.Unit(parameters[name].unit)
-            if parameters[name].unit != "1"
-            else ureg.dimensionless
-            for name in allowed
-        }
-    )
-    try:
-        result = expression.result_unit(units, "model.rate")
-    except InputError as error:
-        raise error.located(reader.source, "model.rate") from None
-    target = population / time_unit
-    if ureg.Quantity(1, result).dimensionality != ureg.Quantity(1, target).dimensionality:
-        raise reader.fail(
-            f'the rate comes out in "{format_unit(result)}"; it must be a population per time '
-            f'such as "{format_unit(target)}"',
-            "model.rate",
-        )
-    # Evaluate in the registry's coherent root units, where every dimensionless combination
-    # has its true magnitude, then convert the result to P/T.
-    factors = {name: parameters[name].to_coherent for name in allowed}
-    n_factor = float(ureg.Quantity(1, population).to_root_units().magnitude)
-    t_factor = float(ureg.Quantity(1, time_unit).to_root_units().magnitude)
-    root_of_result = ureg.Quantity(1, result).to_root_units().units
-    out_factor = float(ureg.Quantity(1, root_of_result).to(target).magnitude)
-
-    def coherent(p):
-        return {name: p[name] * factors[name] for name in allowed}
-
-    def rate(t, n, p):
-        return expression.evaluate(t * t_factor, n * n_factor, coherent(p)) * out_factor
-
-    def d_dn(t, n, p):
-        return expression.d_dN(t * t_factor, n * n_factor, coherent(p)) * (out_factor * n_factor)
-
-    coherent_form = {
-        "expression": expression,
-        "factors": factors,
-        "t_factor": t_factor,
-        "n_factor": n_factor,
-        "out_factor": out_factor,
-    }
-    model = models.GrowthModel(
-        "custom",
-        f"dN/dt = {rate_text}",
-        {n: "custom" for n in allowed},
-        rate,
-        d_dn,
-        coherent=coherent_form,
-    )
-    return model, parameters
-
-
-def _given_unit(reader, name, entry):
-    where = f"parameters.{name}"
-    probe = entry
-    if isinstance(entry, dict):
-        for key in ("value", "low", "mode", "high", "sd"):
-            if key in entry:
-                probe = entry[key]
-                break
-    try:
-        return parse_quantity(probe, where).units
-    except InputError as error:
-        raise error.located(reader.source, where) from None
-
-
-def _parameter(reader, name, entry, unit, meaning) -> Parameter:
-    where = f"parameters.{name}"
-    label = format_unit(unit)
-    coherent = float(ureg.Quantity(1, unit).to_root_units().magnitude)
-    if not isinstance(entry, dict):
-        value = reader.quantity(entry, where, unit, meaning)
-        return Parameter(name, value, label, str(entry), None, coherent)
-    reader.table(entry, where, TABLE_KEYS)
-
-    def get(key):
-        return (
-            reader.quantity(entry[key], f"{where}.{key}", unit, meaning) if key in entry else None
-        )
-
-    value, sd, low, high, mode = (get(k) for k in ("value", "sd", "low", "high", "mode"))
-    cv = None
-    if "cv" in entry:
-        cv = reader.number(entry, "cv", where, None, low=0, accepted="; cv is a positive number")
-    kind = entry.get("dist")
-    if kind is not None and kind not in KINDS:
-        raise reader.fail(
-            f"unknown distribution {kind!r}{did_you_mean(str(kind), KINDS)}; "
-            "accepted: " + ", ".join(KINDS),
-            f"{where}.dist",
-        )
-    if kind is None:
-        spread_given = sd is not None or cv is not None
-        if mode is not None:
-            kind = "triangular"
-        elif spread_given and (low is not None or high is not None):
-            kind = "truncated-normal"
-        elif spread_given:
-            kind = "normal"
-        elif low is not None and high is not None:
-            kind = "uniform"
-        else:
-            raise reader.fail(
-                "an uncertain parameter needs sd or cv (normal), low and high (uniform), "
-                'low, mode and high (triangular), or dist = "lognormal" with cv or sd',
-                where,
-            )
-    if cv is not None:
-        if value is None:
-            raise reader.fail("cv needs a value to be relative to", f"{where}.cv")
-        if sd is not None:
-            raise reader.fail("give sd or cv, not both", f"{where}.cv")
-        sd = cv * abs(value)
-    if sd is not None and sd <= 0:
-        raise reader.fail("sd must be positive", f"{where}.sd")
-
-    def need(*keys):
-        for key, val in zip(
-            keys,
-            (dict(value=value, sd=sd, low=low, high=high, mode=mode)[k] for k in keys),
-            strict=True,
-        ):
-            if val is None:
-                missing = "sd or cv" if key == "sd" else key
-                raise reader.fail(f"a {kind} distribution needs {missing}", f"{where}.{key}")
-
-    if kind in ("normal", "lognormal"):
-        need("value", "sd")
-        if kind == "lognormal" and value <= 0:
-            raise reader.fail("a lognormal parameter needs a positive value", f"{where}.value")
-        dist = Distribution(kind, value, sd=sd)
-    elif kind == "uniform":
-        need("low", "high")
-        dist = Distribution(kind, (low + high) / 2 if value is None else value, low=low, high=high)
-    elif kind == "triangular":
-        need("low", "mode", "high")
-        dist = Distribution(kind, mode if value is None else value, low=low, high=high, mode=mode)
-    else:
-        need("value", "sd")
-        dist = Distribution(
-            kind,
-            value,
-            sd=sd,
-            low=-math.inf if low is None else low,
-            high=math.inf if high is None else high,
-        )
-    if dist.low >= dist.high:
-        raise reader.fail("low must be below high", f"{where}.low")
-    if kind == "triangular" and not dist.low <= dist.mode <= dist.high:
-        raise reader.fail("mode must lie between low and high", f"{where}.mode")
-    if not dist.low <= dist.nominal <= dist.high:
-        raise reader.fail("value must lie between low and high", f"{where}.value")
-    given = ", ".join(f"{k} = {v}" for k, v in entry.items())
-    return Parameter(name, float(dist.nominal), label, given, dist, coherent)
-
-
-def _check_sign(reader, parameter: Parameter, where: str) -> None:
-    name = parameter.name
-    lowest = (
-        parameter.nominal
-        if parameter.dist is None
-        else min(
-            parameter.nominal,
-            parameter.dist.low if math.isfinite(parameter.dist.low) else parameter.nominal,
-        )
-    )
-    if name in POSITIVE and lowest <= 0:
-        raise reader.fail(f"{POSITIVE[name]} must be positive, got {parameter.given}", where)
-    if name in NON_NEGATIVE and lowest < 0:
-        raise reader.fail(f"{NON_NEGATIVE[name]} cannot be negative, got {parameter.given}", where)
 
 
 def _quantities(reader, entries, population, time_unit, horizon) -> tuple[QuantitySpec, ...]:

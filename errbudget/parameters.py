@@ -1,0 +1,285 @@
+"""Parameter tables of a case: fixed values and distributions, unit-checked and converted.
+
+Built-in laws fix the dimension of each parameter (a growth rate is 1/time, K and N0 are
+populations, H is population per time, theta is a pure number); a custom law takes each
+parameter in the unit it was written in and checks the rate expression's units instead.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+from errbudget import models
+from errbudget.distributions import KINDS, Distribution
+from errbudget.errors import InputError, did_you_mean
+from errbudget.units import format_unit, parse_quantity, ureg
+
+TABLE_KEYS = ("value", "sd", "cv", "low", "high", "mode", "dist")
+# Parameters that must be strictly positive, by name, for the built-in laws.
+POSITIVE = {
+    "K": "a carrying capacity",
+    "N0": "an initial population",
+    "A": "an Allee threshold",
+    "theta": "a shape exponent",
+}
+NON_NEGATIVE = {"E": "a harvest rate", "H": "a removal rate"}
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """One model input: fixed (``dist`` None) or uncertain.
+
+    ``nominal`` and the distribution are in ``unit`` (see module docstring); ``to_coherent``
+    is the factor to the registry's root units, used only by custom laws.
+    """
+
+    name: str
+    nominal: float
+    unit: str
+    given: str
+    dist: Distribution | None
+    to_coherent: float = 1.0
+
+
+def builtin_parameters(reader, model, table, population, time_unit) -> dict[str, Parameter]:
+    expected = ("N0", *model.parameter_names)
+    for name in table:
+        if name not in expected:
+            raise reader.fail(
+                f"{model.form!r} has no parameter {name!r}{did_you_mean(name, expected)}; "
+                "its parameters are " + ", ".join(expected),
+                f"parameters.{name}",
+            )
+    units = {
+        models.RATE: ureg.dimensionless / time_unit,
+        models.POPULATION: population,
+        models.FLUX: population / time_unit,
+        models.PURE: ureg.dimensionless,
+    }
+    meanings = {
+        models.RATE: "a rate (per time)",
+        models.POPULATION: "a population level",
+        models.FLUX: "a flux (population per time)",
+        models.PURE: "a pure number",
+    }
+    parameters = {}
+    for name in expected:
+        where = f"parameters.{name}"
+        if name not in table:
+            raise reader.fail(f"missing parameter {name!r} of the {model.form!r} law", where)
+        kind = models.POPULATION if name == "N0" else model.kinds[name]
+        parameters[name] = _parameter(reader, name, table[name], units[kind], meanings[kind])
+        _check_sign(reader, parameters[name], where)
+    return parameters
+
+
+def custom_model(reader, rate_text, table, population, time_unit):
+    from errbudget import expr  # custom laws only; keeps built-in runs light
+
+    if not isinstance(rate_text, str):
+        raise reader.fail(
+            'form = "custom" needs a rate expression, e.g. rate = "r*N*(1 - N/K)"', "model.rate"
+        )
+    try:
+        used = expr.names_in(rate_text)
+    except InputError as error:
+        raise error.located(reader.source, "model.rate") from None
+    allowed = tuple(name for name in table if name != "N0")
+    for name in sorted(used):
+        if name not in table:
+            raise reader.fail(
+                f"the rate uses {name!r}, which is not in [parameters]"
+                f"{did_you_mean(name, allowed)}",
+                "model.rate",
+            )
+    if "N0" not in table:
+        raise reader.fail("missing parameter 'N0' (the initial population)", "parameters.N0")
+    for name in allowed:
+        if name not in used:
+            raise reader.fail(
+                f"parameter {name!r} is not used by the rate expression", f"parameters.{name}"
+            )
+    try:
+        expression = expr.parse_rate(rate_text, allowed)
+    except InputError as error:
+        raise error.located(reader.source, "model.rate") from None
+
+    parameters = {"N0": _parameter(reader, "N0", table["N0"], population, "a population level")}
+    _check_sign(reader, parameters["N0"], "parameters.N0")
+    for name in allowed:
+        given_unit = _given_unit(reader, name, table[name])
+        parameters[name] = _parameter(reader, name, table[name], given_unit, "this parameter")
+    units = {"N": population, "t": time_unit}
+    units.update(
+        {
+            name: ureg.Unit(parameters[name].unit)
+            if parameters[name].unit != "1"
+            else ureg.dimensionless
+            for name in allowed
+        }
+    )
+    try:
+        result = expression.result_unit(units, "model.rate")
+    except InputError as error:
+        raise error.located(reader.source, "model.rate") from None
+    target = population / time_unit
+    if ureg.Quantity(1, result).dimensionality != ureg.Quantity(1, target).dimensionality:
+        raise reader.fail(
+            f'the rate comes out in "{format_unit(result)}"; it must be a population per time '
+            f'such as "{format_unit(target)}"',
+            "model.rate",
+        )
+    # Evaluate in the registry's coherent root units, where every dimensionless combination
+    # has its true magnitude, then convert the result to P/T.
+    factors = {name: parameters[name].to_coherent for name in allowed}
+    n_factor = float(ureg.Quantity(1, population).to_root_units().magnitude)
+    t_factor = float(ureg.Quantity(1, time_unit).to_root_units().magnitude)
+    root_of_result = ureg.Quantity(1, result).to_root_units().units
+    out_factor = float(ureg.Quantity(1, root_of_result).to(target).magnitude)
+
+    def coherent(p):
+        return {name: p[name] * factors[name] for name in allowed}
+
+    def rate(t, n, p):
+        return expression.evaluate(t * t_factor, n * n_factor, coherent(p)) * out_factor
+
+    def d_dn(t, n, p):
+        return expression.d_dN(t * t_factor, n * n_factor, coherent(p)) * (out_factor * n_factor)
+
+    coherent_form = {
+        "expression": expression,
+        "factors": factors,
+        "t_factor": t_factor,
+        "n_factor": n_factor,
+        "out_factor": out_factor,
+    }
+    model = models.GrowthModel(
+        "custom",
+        f"dN/dt = {rate_text}",
+        {n: "custom" for n in allowed},
+        rate,
+        d_dn,
+        coherent=coherent_form,
+    )
+    return model, parameters
+
+
+def _given_unit(reader, name, entry):
+    where = f"parameters.{name}"
+    probe = entry
+    if isinstance(entry, dict):
+        for key in ("value", "low", "mode", "high", "sd"):
+            if key in entry:
+                probe = entry[key]
+                break
+    try:
+        return parse_quantity(probe, where).units
+    except InputError as error:
+        raise error.located(reader.source, where) from None
+
+
+def _parameter(reader, name, entry, unit, meaning) -> Parameter:
+    where = f"parameters.{name}"
+    label = format_unit(unit)
+    coherent = float(ureg.Quantity(1, unit).to_root_units().magnitude)
+    if not isinstance(entry, dict):
+        value = reader.quantity(entry, where, unit, meaning)
+        return Parameter(name, value, label, str(entry), None, coherent)
+    reader.table(entry, where, TABLE_KEYS)
+
+    def get(key):
+        return (
+            reader.quantity(entry[key], f"{where}.{key}", unit, meaning) if key in entry else None
+        )
+
+    value, sd, low, high, mode = (get(k) for k in ("value", "sd", "low", "high", "mode"))
+    cv = None
+    if "cv" in entry:
+        cv = reader.number(entry, "cv", where, None, low=0, accepted="; cv is a positive number")
+    kind = entry.get("dist")
+    if kind is not None and kind not in KINDS:
+        raise reader.fail(
+            f"unknown distribution {kind!r}{did_you_mean(str(kind), KINDS)}; "
+            "accepted: " + ", ".join(KINDS),
+            f"{where}.dist",
+        )
+    if kind is None:
+        spread_given = sd is not None or cv is not None
+        if mode is not None:
+            kind = "triangular"
+        elif spread_given and (low is not None or high is not None):
+            kind = "truncated-normal"
+        elif spread_given:
+            kind = "normal"
+        elif low is not None and high is not None:
+            kind = "uniform"
+        else:
+            raise reader.fail(
+                "an uncertain parameter needs sd or cv (normal), low and high (uniform), "
+                'low, mode and high (triangular), or dist = "lognormal" with cv or sd',
+                where,
+            )
+    if cv is not None:
+        if value is None:
+            raise reader.fail("cv needs a value to be relative to", f"{where}.cv")
+        if sd is not None:
+            raise reader.fail("give sd or cv, not both", f"{where}.cv")
+        sd = cv * abs(value)
+    if sd is not None and sd <= 0:
+        raise reader.fail("sd must be positive", f"{where}.sd")
+
+    def need(*keys):
+        for key, val in zip(
+            keys,
+            (dict(value=value, sd=sd, low=low, high=high, mode=mode)[k] for k in keys),
+            strict=True,
+        ):
+            if val is None:
+                missing = "sd or cv" if key == "sd" else key
+                raise reader.fail(f"a {kind} distribution needs {missing}", f"{where}.{key}")
+
+    if kind in ("normal", "lognormal"):
+        need("value", "sd")
+        if kind == "lognormal" and value <= 0:
+            raise reader.fail("a lognormal parameter needs a positive value", f"{where}.value")
+        dist = Distribution(kind, value, sd=sd)
+    elif kind == "uniform":
+        need("low", "high")
+        dist = Distribution(kind, (low + high) / 2 if value is None else value, low=low, high=high)
+    elif kind == "triangular":
+        need("low", "mode", "high")
+        dist = Distribution(kind, mode if value is None else value, low=low, high=high, mode=mode)
+    else:
+        need("value", "sd")
+        dist = Distribution(
+            kind,
+            value,
+            sd=sd,
+            low=-math.inf if low is None else low,
+            high=math.inf if high is None else high,
+        )
+    if dist.low >= dist.high:
+        raise reader.fail("low must be below high", f"{where}.low")
+    if kind == "triangular" and not dist.low <= dist.mode <= dist.high:
+        raise reader.fail("mode must lie between low and high", f"{where}.mode")
+    if not dist.low <= dist.nominal <= dist.high:
+        raise reader.fail("value must lie between low and high", f"{where}.value")
+    given = ", ".join(f"{k} = {v}" for k, v in entry.items())
+    return Parameter(name, float(dist.nominal), label, given, dist, coherent)
+
+
+def _check_sign(reader, parameter: Parameter, where: str) -> None:
+    name = parameter.name
+    lowest = (
+        parameter.nominal
+        if parameter.dist is None
+        else min(
+            parameter.nominal,
+            parameter.dist.low if math.isfinite(parameter.dist.low) else parameter.nominal,
+        )
+    )
+    if name in POSITIVE and lowest <= 0:
+        raise reader.fail(f"{POSITIVE[name]} must be positive, got {parameter.given}", where)
+    if name in NON_NEGATIVE and lowest < 0:
+        raise reader.fail(f"{NON_NEGATIVE[name]} cannot be negative, got {parameter.given}", where)
