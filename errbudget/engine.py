@@ -115,27 +115,10 @@ def integrate_compiled(
 ) -> np.ndarray:
     """Same contract as :func:`errbudget.schemes.integrate` with ``dtype=float64``.
 
-    Parameters
-    ----------
-    kernel : compiled function from :func:`kernel_for`
-    spec : RateSpec
-    n0 : ndarray, shape (S,)
-        Initial values [population].
-    params : mapping of str to ndarray of shape (S,) or scalar
-        Parameters in the model's internal units.
-    step : float
-        Time step h [time].
-    n_steps : int
-        Number of steps.
-    scheme : Scheme
-        The tableau the kernel was generated for.
-    threads : int, optional
-        Threads sharing the members (default :data:`THREADS`); the states do not depend
-        on it.
-
-    Returns
-    -------
-    ndarray, shape (n_steps + 1, S), float64
+    ``n0``, ``params``, ``step``, ``n_steps`` and ``scheme`` are as there (``scheme`` must be
+    the tableau ``kernel`` was generated for by :func:`kernel_for` from ``spec``).
+    ``threads`` shares the members among threads (default :data:`THREADS`); the states do
+    not depend on it. Returns the states, shape (n_steps + 1, S), float64.
     """
     y0 = np.array(n0, dtype=np.float64).reshape(-1)
     size = y0.size

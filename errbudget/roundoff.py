@@ -73,7 +73,6 @@ def measure(case: Case, step: float) -> dict:
 
 # --- Total-error curve: discretisation C h^p plus round-off D u / h --------------------------
 
-UNIT_ROUNDOFF[np.float16] = 2.0**-11  # binary16 (IEEE 754-2008), for steep round-off studies
 CURVE_MAX_STEPS = 2**20  # steps of the finest run of a curve at most (caps the work)
 CURVE_MAX_LEVELS = 24  # halvings of the case's step at most
 RUN_CURVE_MAX_STEPS = 2**12  # finest run of the binary64 curve inside a budget run (speed)
@@ -174,7 +173,7 @@ def error_curve(case: Case, dtype=np.float64, steps=None) -> dict:
     ----------
     case : Case
     dtype : numpy float type
-        np.float16, np.float32 or np.float64.
+        np.float32 or np.float64.
     steps : sequence of float, optional
         Steps to run [T]; default :func:`curve_steps` (halvings of the case's step while
         the finest run has at most ``CURVE_MAX_STEPS`` steps).

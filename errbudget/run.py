@@ -395,20 +395,29 @@ def discretisation_errors(case: Case, values: np.ndarray, reference: np.ndarray)
     return errors
 
 
+def _most_correlated(target: np.ndarray, sampled: dict) -> dict | None:
+    """The input whose Spearman rank correlation with ``target`` is largest in size.
+
+    Non-finite entries of ``target`` are left out; returns {"name", "rho"} or None.
+    """
+    finite = np.isfinite(target)
+    best = None
+    for name, values in sampled.items():
+        if np.ptp(values[finite]) == 0:
+            continue
+        rho = float(stats.spearmanr(values[finite], target[finite]).statistic)
+        if math.isfinite(rho) and (best is None or abs(rho) > abs(best["rho"])):
+            best = {"name": name, "rho": rho}
+    return best
+
+
 def _drivers(errors: np.ndarray, sampled: dict, design) -> list[dict | None]:
     """Per quantity: the input whose rank correlation with the discretisation error is largest."""
     result = []
     for q in range(errors.shape[0]):
-        best = None
         finite = np.isfinite(errors[q])
-        if design is not None and finite.sum() > 10 and np.ptp(errors[q][finite]) > 0:
-            for name, values in sampled.items():
-                if np.ptp(values[finite]) == 0:
-                    continue
-                rho = float(stats.spearmanr(values[finite], errors[q][finite]).statistic)
-                if math.isfinite(rho) and (best is None or abs(rho) > abs(best["rho"])):
-                    best = {"name": name, "rho": rho}
-        result.append(best)
+        usable = design is not None and finite.sum() > 10 and np.ptp(errors[q][finite]) > 0
+        result.append(_most_correlated(errors[q], sampled) if usable else None)
     return result
 
 
@@ -417,16 +426,10 @@ def _stability_map(case: Case, sampled: dict, limits: dict, members: np.ndarray)
     stable = np.asarray(limits["stable"], dtype=float)
     if stable.size < 2 or not np.isfinite(stable).any() or not sampled:
         return None
-    finite = np.isfinite(stable)
-    best, best_rho = None, 0.0
-    for name, values in sampled.items():
-        if np.ptp(values[finite]) == 0:
-            continue
-        rho = float(stats.spearmanr(values[finite], stable[finite]).statistic)
-        if math.isfinite(rho) and abs(rho) > abs(best_rho):
-            best, best_rho = name, rho
-    if best is None:
+    found = _most_correlated(stable, sampled)
+    if found is None or found["rho"] == 0:
         return None
+    best, best_rho = found["name"], found["rho"]
     monotone = np.asarray(limits["monotone"], dtype=float)
     return {
         "parameter": best,
