@@ -23,10 +23,10 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from errbudget import engine, ensemble  # noqa: E402
-from errbudget.case import load_case  # noqa: E402
-from errbudget.schemes import SCHEMES  # noqa: E402
-from errbudget.spread import sample_design  # noqa: E402
+from errbudget.case.load import load_case  # noqa: E402
+from errbudget.solve import engine, ensemble  # noqa: E402
+from errbudget.solve.tableaux import SCHEMES  # noqa: E402
+from errbudget.uncertainty.spread import sample_design  # noqa: E402
 
 BASE_SAMPLES = 1024
 HORIZON = 365.0  # [day]
@@ -175,7 +175,7 @@ def compile_cost(case_path: Path) -> tuple[float, float]:
     """First solve in a fresh process with an empty kernel cache, then with the cache warm."""
     code = (
         f"import time, sys; sys.path.insert(0, {str(ROOT)!r})\n"
-        "from errbudget.case import load_case; from errbudget import ensemble\n"
+        "from errbudget.case.load import load_case; from errbudget import ensemble\n"
         f"c = load_case({str(case_path)!r}); p = ensemble.nominal_params(c)\n"
         "t = time.perf_counter(); ensemble.solve(c, p, 7.0); print(time.perf_counter() - t)\n"
     )

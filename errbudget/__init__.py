@@ -1,13 +1,29 @@
 """errbudget: is the time step of a population forecast small enough, given the data?
 
-Public API: :func:`load_case`, :func:`run_case`, :func:`grid_convergence`.
+Public API: :func:`load_case`, :func:`run_case`, :func:`grid_convergence`. They are loaded
+on first use, so that ``import errbudget`` (and ``errbudget --version``) stays cheap.
 """
 
-__version__ = "0.1.0"
+from __future__ import annotations
 
-from errbudget.case import load_case  # noqa: E402
-from errbudget.convergence import grid_convergence  # noqa: E402
-from errbudget.errors import InputError  # noqa: E402
-from errbudget.run import run_case  # noqa: E402
+from importlib import import_module
+
+from errbudget.errors import InputError
+
+_LAZY = {
+    "load_case": "errbudget.case.load",
+    "run_case": "errbudget.budget.run",
+    "grid_convergence": "errbudget.estimates.convergence",
+}
 
 __all__ = ["InputError", "__version__", "grid_convergence", "load_case", "run_case"]
+
+
+def __getattr__(name: str):
+    if name == "__version__":
+        from errbudget.version import package_version
+
+        return package_version()
+    if name in _LAZY:
+        return getattr(import_module(_LAZY[name]), name)
+    raise AttributeError(f"module 'errbudget' has no attribute {name!r}")

@@ -49,7 +49,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _design_size(text: str) -> int:
-    from errbudget.case import MIN_SAMPLES, is_design_size
+    from errbudget.case.load import MIN_SAMPLES, is_design_size
 
     value = _non_negative_int(text)
     if not is_design_size(value):
@@ -73,19 +73,19 @@ def main(argv: list[str] | None = None) -> int:
     try:
         args = build_parser().parse_args(argv)
         if args.version:
-            from errbudget import __version__
+            from errbudget.version import package_version
 
-            print(f"errbudget {__version__}")
+            print(f"errbudget {package_version()}")
             return EXIT_OK
         if args.command is None:
             raise InputError(
                 "choose a command: run or check (see errbudget --help)", "command line"
             )
-        from errbudget.case import load_case
+        from errbudget.case.load import load_case
 
         cases = [load_case(path) for path in args.cases]  # all valid before anything runs
         if args.command == "check":
-            from errbudget.case import describe
+            from errbudget.case.load import describe
 
             for case in cases:
                 print(describe(case))
@@ -127,11 +127,11 @@ def _progress(quiet: bool, title: str):
 
 
 def _run_one(case, args) -> None:
-    from errbudget import history
-    from errbudget.outputs import dumps, write_all_atomic
+    from errbudget.budget.run import run_case
+    from errbudget.outputs import history
+    from errbudget.outputs.files import dumps, write_all_atomic
+    from errbudget.outputs.tables import ladder_csv, summary_csv
     from errbudget.report import render_html
-    from errbudget.run import run_case
-    from errbudget.tables import ladder_csv, summary_csv
 
     say, bar = _progress(args.quiet, case.path.stem)
     try:

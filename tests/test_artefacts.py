@@ -1,5 +1,5 @@
-"""Tests of errbudget.artefacts: the regimes of explicit Euler on the logistic law (May 1976)
-detected against an accurate solution, and the flags written for the budget."""
+"""Tests of errbudget.estimates.artefacts: the regimes of explicit Euler on the logistic law
+(May 1976) detected against an accurate solution, and the flags written for the budget."""
 
 from __future__ import annotations
 
@@ -8,9 +8,9 @@ import json
 import numpy as np
 import pytest
 
-from errbudget.artefacts import MESSAGES, detect, flags
-from errbudget.models import built_in, stable_equilibria
-from errbudget.schemes import SCHEMES, integrate
+from errbudget.estimates.artefacts import MESSAGES, detect, flags
+from errbudget.laws.models import built_in, stable_equilibria
+from errbudget.solve.tableaux import SCHEMES, integrate
 
 LOGISTIC = built_in("logistic")
 CAPACITY = 100.0  # K [population]

@@ -1,4 +1,4 @@
-"""Tests of errbudget.case: loading the case-file contract, units and describe().
+"""Tests of errbudget.case.load: loading the case-file contract, units and describe().
 
 Bad input (every error class) is tested through the command line in tests/test_cli.py.
 """
@@ -14,8 +14,8 @@ import pint
 import pytest
 
 from errbudget import load_case, run_case
-from errbudget.case import describe
-from errbudget.units import ureg
+from errbudget.case.load import describe
+from errbudget.case.units import ureg
 
 SAMPLES = 64  # base sample size of the Sobol design; a power of two, small for speed
 REL = 1e-12  # the same case in days and in weeks must agree to this relative tolerance

@@ -20,12 +20,12 @@ import pytest
 
 import errbudget
 from errbudget import load_case, run_case
+from errbudget.case.units import ensure_count_units, format_unit, parse_unit, ureg
 from errbudget.cli import main
-from errbudget.units import ensure_count_units, format_unit, parse_unit, ureg
 
 REPO = Path(__file__).resolve().parents[1]
 DEMO_CASES = sorted((REPO / "cases").glob("*.toml"))
-SCHEMA = json.loads((REPO / "errbudget" / "schema" / "budget-1.json").read_text())
+SCHEMA = json.loads((REPO / "errbudget" / "outputs" / "schema" / "budget-1.json").read_text())
 SAMPLES = "64"  # base sample size of the Sobol design; a power of two, small for speed
 EXIT_INPUT = 2
 SENTINEL_JSON = b'{"an": "earlier budget, must stay as it is"}\n'

@@ -1,4 +1,4 @@
-"""Tests of errbudget.convergence: Celik et al. (2008) worked example, exact solutions,
+"""Tests of errbudget.estimates.convergence: Celik et al. (2008) worked example, exact solutions,
 behaviour classification, safety factors, misuse, and the vectorised ensemble helpers."""
 
 from __future__ import annotations
@@ -11,7 +11,7 @@ import warnings
 import numpy as np
 import pytest
 
-from errbudget.convergence import (
+from errbudget.estimates.convergence import (
     GridConvergence,
     behaviour_of,
     grid_convergence,

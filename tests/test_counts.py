@@ -1,4 +1,4 @@
-"""Tests of errbudget.counts: reading field counts and refusing every malformed file."""
+"""Tests of errbudget.case.counts: reading field counts and refusing every malformed file."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import hashlib
 import numpy as np
 import pytest
 
-from errbudget.counts import MAX_FILE_BYTES, MIN_ROWS, read_counts
+from errbudget.case.counts import MAX_FILE_BYTES, MIN_ROWS, read_counts
 from errbudget.errors import InputError
 
 GOOD = "day,count,observer\n0,12,ann\n7,30,ann\n14,55,bo\n21,80,bo\n"

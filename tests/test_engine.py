@@ -12,9 +12,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from errbudget import codegen, engine, ensemble, expr, models
-from errbudget.case import load_case
-from errbudget.schemes import SCHEMES, integrate
+from errbudget.case.load import load_case
+from errbudget.laws import expression as expr
+from errbudget.laws import models
+from errbudget.solve import codegen, engine, ensemble
+from errbudget.solve.tableaux import SCHEMES, integrate
 
 CASES = Path(__file__).resolve().parent.parent / "cases"
 RTOL = 1e-12  # the agreement the design asks for; the kernels repeat integrate's operations

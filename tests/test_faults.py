@@ -21,10 +21,10 @@ from test_cli import (
     _without_clock,
 )
 
-import errbudget.outputs
+import errbudget.outputs.files
 import errbudget.report
 from errbudget.cli import main
-from errbudget.fitting import fit_counts
+from errbudget.uncertainty.fitting import fit_counts
 
 QUICK = ["--samples", "16", "--quiet"]
 PERCH = REPO / "cases" / "perch-reservoir.toml"
@@ -173,7 +173,7 @@ def test_failed_write_leaves_the_earlier_set(capsys, tmp_path, monkeypatch, fail
     # Before the fix, budget.json was renamed into place before budget.html was written, so
     # a failure on the second file left a new budget.json beside an old budget.html.
     case, out, before = _earlier_outputs(capsys, tmp_path)
-    real = errbudget.outputs.tempfile.mkstemp
+    real = errbudget.outputs.files.tempfile.mkstemp
     calls = []
 
     def flaky(*args, **kwargs):
@@ -182,7 +182,7 @@ def test_failed_write_leaves_the_earlier_set(capsys, tmp_path, monkeypatch, fail
             raise OSError(28, "No space left on device")
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(errbudget.outputs.tempfile, "mkstemp", flaky)
+    monkeypatch.setattr(errbudget.outputs.files.tempfile, "mkstemp", flaky)
     assert main(["run", str(case), "--out", str(out), *QUICK]) == 1
     capsys.readouterr()
     _assert_unchanged(out / "pond", before)  # also: no temporary left behind
@@ -197,7 +197,7 @@ def test_failed_rename_leaves_the_earlier_set(capsys, tmp_path, monkeypatch):
             raise OSError(5, "Input/output error")
         return real(src, dst)
 
-    monkeypatch.setattr(errbudget.outputs.os, "replace", broken_second)
+    monkeypatch.setattr(errbudget.outputs.files.os, "replace", broken_second)
     assert main(["run", str(case), "--out", str(out), *QUICK]) == 1
     capsys.readouterr()
     # budget.json is renamed first in the set, so it may be new; this is the documented

@@ -1,4 +1,4 @@
-"""Tests of errbudget.fitting: maximum likelihood from counts and its uncertainty."""
+"""Tests of errbudget.uncertainty.fitting: maximum likelihood from counts and its uncertainty."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ import pytest
 from scipy import stats
 
 from errbudget.errors import InputError
-from errbudget.fitting import ERROR_MODELS, fit_counts
+from errbudget.uncertainty.fitting import ERROR_MODELS, fit_counts
 
 NAMES = ("r", "K", "N0")
 TRUE = np.array([0.3, 500.0, 20.0])  # r [1/day], K [animals], N0 [animals]

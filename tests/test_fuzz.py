@@ -15,9 +15,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from test_cli import BUILTIN, COUNTS, DEMO_CASES, MARSH_COUNTS
 
-from errbudget.case import load_case
+from errbudget.case.counts import read_counts
+from errbudget.case.load import load_case
 from errbudget.cli import main
-from errbudget.counts import read_counts
 from errbudget.errors import InputError
 
 LOADER_EXAMPLES = 150  # random case documents per run

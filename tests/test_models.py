@@ -1,4 +1,4 @@
-"""Tests of errbudget.models: right-hand sides, derivatives, exact solutions, equilibria and
+"""Tests of errbudget.laws.models: right-hand sides, derivatives, exact solutions, equilibria and
 their stability for every built-in law."""
 
 from __future__ import annotations
@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from errbudget.errors import InputError
-from errbudget.models import BUILT_IN, FORMS, GrowthModel, built_in, stable_equilibria
+from errbudget.laws.models import BUILT_IN, FORMS, GrowthModel, built_in, stable_equilibria
 
 FD_STEP = 1e-5  # relative step of the central differences
 FD_TOLERANCE = 1e-6  # central differences are O(step^2) ~ 1e-10, plus cancellation ~1e-11

@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 
 from errbudget import grid_convergence, run_case
-from errbudget.case import load_case
-from errbudget.models import built_in
-from errbudget.schemes import SCHEMES, integrate
+from errbudget.case.load import load_case
+from errbudget.laws.models import built_in
+from errbudget.solve.tableaux import SCHEMES, integrate
 
 R, K, N0, T_END = 1.0, 100.0, 5.0, 6.0  # logistic test problem [1/day, beetle, beetle, day]
 BASE_STEPS = (0.5, 0.25, 0.125)  # coarsest step of each three-level ladder [day]

@@ -1,4 +1,4 @@
-"""Tests of errbudget.quantities: values on and off the grid (cubic Hermite), crossing times
+"""Tests of errbudget.solve.trajectory: values on and off the grid (cubic Hermite), crossing times
 and extrema, against exact solutions, with the orders the schemes promise."""
 
 from __future__ import annotations
@@ -8,10 +8,10 @@ import math
 import numpy as np
 import pytest
 
-from errbudget.case import QuantitySpec
-from errbudget.models import built_in
-from errbudget.quantities import Trajectory, evaluate, extremum, time_to
-from errbudget.schemes import SCHEMES, integrate
+from errbudget.case.load import QuantitySpec
+from errbudget.laws.models import built_in
+from errbudget.solve.tableaux import SCHEMES, integrate
+from errbudget.solve.trajectory import Trajectory, evaluate, extremum, time_to
 
 ORDER_TOLERANCE = 0.15  # |observed - formal| order allowed (from the assignment, no source)
 OFF_GRID = 0.37  # the value is read this share of a step past a grid point

@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 
 import errbudget
-from errbudget.ensemble import ensemble_params, quantity_values, solve
-from errbudget.spread import sample_design
+from errbudget.solve.ensemble import ensemble_params, quantity_values, solve
+from errbudget.uncertainty.spread import sample_design
 
 CASE = """
 title = "Known-answer check: logistic growth, explicit Euler"
@@ -101,7 +101,7 @@ def _no_step_case(tmp_path, *, r_spread: str, fraction: float = 0.1):
 
 
 def test_without_parameter_spread_the_reason_says_so(tmp_path):
-    from errbudget.budget import _why_none
+    from errbudget.budget.build import _why_none
 
     case = _no_step_case(tmp_path, r_spread='{ value = "0.2 / day", sd = "0.02 / day" }')
     tried = [{"step": 0.5, "worst_ratio": 2.0, "artefacts": []}]
@@ -112,7 +112,7 @@ def test_without_parameter_spread_the_reason_says_so(tmp_path):
 
 
 def test_roundoff_first_is_named_as_the_reason(tmp_path):
-    from errbudget.budget import _why_none
+    from errbudget.budget.build import _why_none
 
     case = _no_step_case(tmp_path, r_spread='{ value = "0.2 / day", sd = "0.02 / day" }')
     tried = [{"step": 0.5, "worst_ratio": 2.0, "artefacts": []}]
@@ -122,7 +122,7 @@ def test_roundoff_first_is_named_as_the_reason(tmp_path):
 
 
 def test_artefacts_everywhere_are_named_as_the_reason(tmp_path):
-    from errbudget.budget import _why_none
+    from errbudget.budget.build import _why_none
 
     case = _no_step_case(tmp_path, r_spread='{ value = "0.2 / day", sd = "0.02 / day" }')
     tried = [

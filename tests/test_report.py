@@ -27,7 +27,7 @@ import numpy as np
 import pytest
 
 import errbudget
-from errbudget.outputs import dumps
+from errbudget.outputs.files import dumps
 from errbudget.report import render_html
 
 ROOT = Path(__file__).resolve().parents[1]

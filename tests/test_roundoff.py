@@ -1,5 +1,6 @@
-"""Tests of errbudget.roundoff: the measured round-off of a small case in binary32, binary64
-and long double, the a-priori bound, and an mpmath reference for the explicit Euler value."""
+"""Tests of errbudget.estimates.roundoff: the measured round-off of a small case in binary32,
+binary64 and long double, the a-priori bound, and an mpmath reference for the explicit Euler
+value."""
 
 from __future__ import annotations
 
@@ -7,11 +8,11 @@ import mpmath
 import numpy as np
 import pytest
 
-from errbudget import roundoff
-from errbudget.case import load_case
-from errbudget.models import built_in
-from errbudget.roundoff import UNIT_ROUNDOFF, measure, wide_type
-from errbudget.schemes import SCHEMES, integrate
+from errbudget.case.load import load_case
+from errbudget.estimates import roundoff
+from errbudget.estimates.roundoff import UNIT_ROUNDOFF, measure, wide_type
+from errbudget.laws.models import built_in
+from errbudget.solve.tableaux import SCHEMES, integrate
 
 MP_DIGITS = 50  # decimal digits of the mpmath reference
 U64 = 2.0**-53  # binary64 unit roundoff (IEEE 754-2008)

@@ -1,4 +1,5 @@
-"""Total error against step: discretisation C h^p plus round-off D u / h (errbudget.roundoff)."""
+"""Total error against step: discretisation C h^p plus round-off D u / h
+(errbudget.estimates.roundoff)."""
 
 from __future__ import annotations
 
@@ -7,8 +8,8 @@ import re
 import numpy as np
 import pytest
 
-from errbudget.case import load_case
-from errbudget.roundoff import UNIT_ROUNDOFF, curve_steps, error_curve
+from errbudget.case.load import load_case
+from errbudget.estimates.roundoff import UNIT_ROUNDOFF, curve_steps, error_curve
 
 # Logistic growth from 1 % of K over 12 e-foldings: near K at the end, where binary32
 # increments of h r N (1 - N/K) below u N are lost, so round-off grows as the step shrinks.

@@ -12,7 +12,7 @@ CASES = Path(__file__).resolve().parent.parent / "cases"
 def test_unsettled_sobol_indices_raise_a_flag_with_advice(monkeypatch):
     # The convergence check of the indices (estimates at N/2 and N must agree within their
     # intervals) must reach the budget as a flag telling the user to raise the samples.
-    from errbudget import run
+    from errbudget.budget import run
 
     real = run.sobol_indices
 

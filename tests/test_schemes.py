@@ -1,4 +1,4 @@
-"""Tests of errbudget.schemes: Butcher tableaux, stability functions, observed orders of the
+"""Tests of errbudget.solve.tableaux: Butcher tableaux, stability functions, observed orders of the
 ensemble stepper against exact solutions, and explicit Euler as the logistic map."""
 
 from __future__ import annotations
@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 
 from errbudget.errors import InputError
-from errbudget.models import built_in
-from errbudget.schemes import SCHEMES, Scheme, get_scheme, integrate
+from errbudget.laws.models import built_in
+from errbudget.solve.tableaux import SCHEMES, Scheme, get_scheme, integrate
 
 ORDER_TOLERANCE = 0.15  # |observed - formal| order allowed (from the assignment, no source)
 HORIZON = 2.0  # [time]; r T <= 2.4 keeps every member in the asymptotic range

@@ -1,4 +1,4 @@
-"""Tests of errbudget.spread: Saltelli design, forecast spread and Sobol indices."""
+"""Tests of errbudget.uncertainty.spread: Saltelli design, forecast spread and Sobol indices."""
 
 from __future__ import annotations
 
@@ -9,9 +9,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from errbudget.distributions import Distribution
+from errbudget.case.distributions import Distribution
 from errbudget.errors import InputError
-from errbudget.spread import (
+from errbudget.uncertainty.spread import (
     Design,
     JointNormal,
     _compare_halves,

@@ -1,5 +1,5 @@
-"""Tests of errbudget.stability: real-axis limits of the stability functions and step limits
-at the stable equilibria of the laws, checked against May (1976) and against the behaviour
+"""Tests of errbudget.estimates.stability: real-axis limits of the stability functions and step
+limits at the stable equilibria of the laws, checked against May (1976) and against the behaviour
 of the schemes themselves."""
 
 from __future__ import annotations
@@ -7,9 +7,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from errbudget.models import built_in
-from errbudget.schemes import SCHEMES, integrate
-from errbudget.stability import real_axis_limits, step_limits
+from errbudget.estimates.stability import real_axis_limits, step_limits
+from errbudget.laws.models import built_in
+from errbudget.solve.tableaux import SCHEMES, integrate
 
 # Recalled value: the real-axis stability boundary of classical RK4 is 2.7853 (Hairer &
 # Wanner 1996, Solving ODEs II, sec. IV.2; recalled).

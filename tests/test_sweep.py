@@ -6,7 +6,7 @@ import json
 from pathlib import Path
 
 import errbudget
-from errbudget import sweep
+from errbudget.budget import passes as sweep
 
 CASES = Path(__file__).resolve().parent.parent / "cases"
 CLOCK = ("elapsed_seconds", "cost", "chunk_rows", "timestamp")

@@ -8,10 +8,10 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from errbudget.case import load_case
-from errbudget.counts import Counts
-from errbudget.run import run_case
-from errbudget.validation import compare_with_counts, observation_sd
+from errbudget.budget.run import run_case
+from errbudget.case.counts import Counts
+from errbudget.case.load import load_case
+from errbudget.estimates.validation import compare_with_counts, observation_sd
 
 UNITS = SimpleNamespace(population_unit="fish", time_unit="day")
 

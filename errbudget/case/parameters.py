@@ -10,10 +10,10 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from errbudget import models
-from errbudget.distributions import KINDS, Distribution
+from errbudget.case.distributions import KINDS, Distribution
+from errbudget.case.units import format_unit, parse_quantity, ureg
 from errbudget.errors import InputError, did_you_mean
-from errbudget.units import format_unit, parse_quantity, ureg
+from errbudget.laws import models
 
 TABLE_KEYS = ("value", "sd", "cv", "low", "high", "mode", "dist")
 # Parameters that must be strictly positive, by name, for the built-in laws.
@@ -75,7 +75,8 @@ def builtin_parameters(reader, model, table, population, time_unit) -> dict[str,
 
 
 def custom_model(reader, rate_text, table, population, time_unit):
-    from errbudget import expr  # custom laws only; keeps built-in runs light
+    from errbudget.case.law_units import result_unit
+    from errbudget.laws import expression as expr  # custom laws only
 
     if not isinstance(rate_text, str):
         raise reader.fail(
@@ -120,7 +121,7 @@ def custom_model(reader, rate_text, table, population, time_unit):
         }
     )
     try:
-        result = expression.result_unit(units, "model.rate")
+        result = result_unit(expression, units, "model.rate")
     except InputError as error:
         raise error.located(reader.source, "model.rate") from None
     target = population / time_unit

@@ -205,7 +205,7 @@ def check_forecast(previous: dict, current: dict) -> dict | None:
         forecast, forecast_sd, u_D, E, u_val, exceed, n_exceed, unit, time_unit, and
         ``beyond`` (later counts outside the forecast range, not compared).
     """
-    from errbudget.validation import COVERAGE, observation_sd
+    from errbudget.estimates.validation import COVERAGE, observation_sd
 
     forecast, old_times = previous.get("forecast"), previous.get("count_times")
     times, counts = current.get("count_times"), current.get("counts")

@@ -15,8 +15,8 @@ from collections.abc import Mapping
 
 import numpy as np
 
-from errbudget.models import GrowthModel, stable_equilibria
-from errbudget.schemes import Scheme
+from errbudget.laws.models import GrowthModel, stable_equilibria
+from errbudget.solve.tableaux import Scheme
 
 SCAN_LIMIT = 50.0  # furthest |z| = h |J| examined on the negative real axis
 SCAN_POINTS = 50_001  # scan resolution before bisection refines the limit

@@ -14,10 +14,10 @@ from fractions import Fraction
 
 import numpy as np
 
-from errbudget import __version__
-from errbudget.case import Case
-from errbudget.ensemble import n_steps_for
-from errbudget.roundoff import UNIT_ROUNDOFF
+from errbudget.case.load import Case
+from errbudget.estimates.roundoff import UNIT_ROUNDOFF
+from errbudget.solve.ensemble import n_steps_for
+from errbudget.version import package_version
 
 SCHEMA = "errbudget.budget/1"
 REFERENCE_NOTE = "Richardson-extrapolated values from the two finest ladder levels"
@@ -43,10 +43,10 @@ def candidate_steps(case: Case, finest: float) -> list[float]:
 def judge_step(case: Case, result: dict, reference, step: float, spreads, scale: float) -> dict:
     """Apply the verdict rule to the ensemble's values at ``step`` against the reference.
 
-    ``result`` comes from :func:`errbudget.sweep.candidate_pass`; ``scale`` is the largest
+    ``result`` comes from :func:`errbudget.budget.passes.candidate_pass`; ``scale`` is the largest
     |N| of the reference level, for the round-off bound n u |N| [population].
     """
-    from errbudget.run import discretisation_errors
+    from errbudget.budget.run import discretisation_errors
 
     errors = discretisation_errors(case, result["values"], reference)
     n_steps = n_steps_for(case.horizon, step)
@@ -386,7 +386,7 @@ def assemble(
         },
         "run": {
             "package": "errbudget",
-            "version": __version__,
+            "version": package_version(),
             "samples": n_base,
             "seed": seed,
             "parameter_sets": design_rows,

@@ -7,10 +7,10 @@ from collections.abc import Mapping
 
 import numpy as np
 
-from errbudget import engine
-from errbudget.case import Case
-from errbudget.quantities import Trajectory, evaluate
-from errbudget.schemes import Scheme, get_scheme, integrate
+from errbudget.solve import engine
+from errbudget.solve.problem import Problem
+from errbudget.solve.tableaux import Scheme, get_scheme, integrate
+from errbudget.solve.trajectory import Trajectory, evaluate
 
 USE_COMPILED = True  # False forces the numpy reference path (tests, benchmarks)
 _COMPILED: dict[tuple, tuple] = {}  # (id(law), scheme) -> (law, (kernel, spec) or None)
@@ -22,7 +22,7 @@ def n_steps_for(horizon: float, step: float) -> int:
 
 
 def solve(
-    case: Case,
+    case: Problem,
     params: Mapping[str, np.ndarray],
     step: float,
     scheme: Scheme | None = None,
@@ -32,7 +32,7 @@ def solve(
 
     Parameters
     ----------
-    case : Case
+    case : Problem
     params : mapping of str to ndarray of shape (S,)
         Every parameter of the law, and N0 [internal units].
     step : float
@@ -75,7 +75,7 @@ def _compiled(model, scheme: Scheme) -> tuple[object, engine.RateSpec] | None:
     return found[1]
 
 
-def quantity_values(case: Case, traj: Trajectory) -> tuple[np.ndarray, list[bool]]:
+def quantity_values(case: Problem, traj: Trajectory) -> tuple[np.ndarray, list[bool]]:
     """Values of every quantity of the case, shape (Q, S), and per quantity an off-grid flag."""
     values, off_grid = [], []
     for spec in case.quantities:
@@ -85,12 +85,12 @@ def quantity_values(case: Case, traj: Trajectory) -> tuple[np.ndarray, list[bool
     return np.vstack(values), off_grid
 
 
-def nominal_params(case: Case) -> dict[str, np.ndarray]:
+def nominal_params(case: Problem) -> dict[str, np.ndarray]:
     """The nominal parameter set as one-member arrays."""
     return {name: np.array([value]) for name, value in case.nominal().items()}
 
 
-def ensemble_params(case: Case, sampled: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+def ensemble_params(case: Problem, sampled: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
     """Sampled values for the uncertain inputs, nominal values broadcast for the fixed ones."""
     size = len(next(iter(sampled.values()))) if sampled else 1
     return {

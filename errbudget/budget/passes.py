@@ -12,11 +12,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from errbudget import artefacts
-from errbudget.case import Case
-from errbudget.convergence import richardson
-from errbudget.ensemble import n_steps_for, quantity_values, solve
-from errbudget.models import stable_equilibria
+from errbudget.case.load import Case
+from errbudget.estimates import artefacts
+from errbudget.estimates.convergence import richardson
+from errbudget.laws.models import stable_equilibria
+from errbudget.solve.ensemble import n_steps_for, quantity_values, solve
 
 TRAJECTORY_BUDGET_MB = 32  # float64 trajectory storage allowed for one chunk
 TRAJECTORIES_PER_CHUNK = 4  # trajectories alive at once in a chunk (coarse, finer, finest, spare)

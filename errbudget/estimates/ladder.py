@@ -9,15 +9,16 @@ from __future__ import annotations
 
 import numpy as np
 
-from errbudget.case import Case
-from errbudget.convergence import grid_convergence
-from errbudget.ensemble import n_steps_for, nominal_params, quantity_values, solve
-from errbudget.schemes import get_scheme
+from errbudget.case.limits import MAX_FINEST_STEPS
+from errbudget.case.load import Case
+from errbudget.estimates.convergence import grid_convergence
+from errbudget.solve.ensemble import n_steps_for, nominal_params, quantity_values, solve
+from errbudget.solve.tableaux import get_scheme
 
 RATIO = 2  # constant refinement ratio of the ladder
 MIN_LEVELS = 5  # the case's step and four refinements
 MAX_LEVELS = 12  # h / 2048 at most
-MAX_STEPS = 2**19  # steps of the finest level at most, whatever the case
+MAX_STEPS = MAX_FINEST_STEPS  # steps of the finest level at most, whatever the case
 ORDER_TOLERANCE = 0.15  # |p_observed - p_formal| / p_formal counted as settled (common practice)
 ROUNDOFF_FLOOR = 1e3 * np.finfo(float).eps  # level differences below this share are round-off
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
+from errbudget.case.units import format_unit, parse_quantity
 from errbudget.errors import InputError, did_you_mean
-from errbudget.units import format_unit, parse_quantity
 
 
 class CaseReader:

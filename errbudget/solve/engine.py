@@ -1,15 +1,16 @@
 """The compiled ensemble engine: numba kernels generated from checked rate expressions.
 
-:func:`errbudget.schemes.integrate` (numpy, vectorised over the ensemble) stays the
+:func:`errbudget.solve.tableaux.integrate` (numpy, vectorised over the ensemble) stays the
 reference implementation and the path for float32 / long double round-off runs. This module
 gives the same states for binary64 runs. The kernels release the GIL and each thread fills
 its own columns (members) of the output, so both cores are used; each member's arithmetic is
 the same whatever the thread count, so a parallel run equals a single-core run bit for bit.
 
-Built-in laws are compiled from their expression in :data:`errbudget.models.RATE_TEXT`,
-custom laws from the checked tree of their :class:`~errbudget.expr.RateExpression`, through
-the same whitelist. Without numba, :func:`kernel_for` returns None and the caller
-(:func:`errbudget.ensemble.solve`) uses the numpy reference.
+Built-in laws are compiled from their expression in :data:`errbudget.laws.models.RATE_TEXT`,
+custom laws from the checked tree of their
+:class:`~errbudget.laws.expression.RateExpression`, through the same whitelist. Without
+numba, :func:`kernel_for` returns None and the caller (:func:`errbudget.solve.ensemble.solve`)
+uses the numpy reference.
 """
 
 from __future__ import annotations
@@ -23,7 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from errbudget.schemes import Scheme
+from errbudget.solve.tableaux import Scheme
 
 # Threads sharing an ensemble: the cores this process may run on.
 THREADS = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
@@ -60,8 +61,9 @@ def numba_module():
 
 
 def rate_spec(model) -> RateSpec | None:
-    """The compilable description of a :class:`~errbudget.models.GrowthModel`, or None."""
-    from errbudget import expr, models
+    """The compilable description of a :class:`~errbudget.laws.models.GrowthModel`, or None."""
+    from errbudget.laws import expression as expr
+    from errbudget.laws import models
 
     if model.form in models.RATE_TEXT:
         names = model.parameter_names
@@ -89,7 +91,7 @@ def kernel_for(spec: RateSpec, scheme: Scheme):
     numba = numba_module()
     if numba is None:
         return None
-    from errbudget import codegen
+    from errbudget.solve import codegen
 
     source = codegen.kernel_source(spec.tree, spec.names, scheme)
     if source not in _KERNELS:
@@ -113,7 +115,7 @@ def integrate_compiled(
     scheme: Scheme,
     threads: int | None = None,
 ) -> np.ndarray:
-    """Same contract as :func:`errbudget.schemes.integrate` with ``dtype=float64``.
+    """Same contract as :func:`errbudget.solve.tableaux.integrate` with ``dtype=float64``.
 
     ``n0``, ``params``, ``step``, ``n_steps`` and ``scheme`` are as there (``scheme`` must be
     the tableau ``kernel`` was generated for by :func:`kernel_for` from ``spec``).
@@ -158,7 +160,7 @@ def _pool(threads: int) -> ThreadPoolExecutor:
 
 def _partition(size: int, threads: int) -> list[tuple[int, int]]:
     """Column ranges, one per thread, in whole blocks; a single range for small ensembles."""
-    from errbudget.codegen import BLOCK
+    from errbudget.solve.codegen import BLOCK
 
     blocks = -(-size // BLOCK)
     threads = max(1, min(threads, blocks))

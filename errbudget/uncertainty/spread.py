@@ -45,7 +45,7 @@ from SALib.analyze import sobol as salib_analyze
 from SALib.sample import sobol as salib_sample
 from scipy import stats
 
-from errbudget.distributions import Distribution
+from errbudget.case.distributions import Distribution
 from errbudget.errors import InputError
 
 # Smallest base sample accepted: below 16 the bootstrap intervals are meaningless and the

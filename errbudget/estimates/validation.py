@@ -22,9 +22,9 @@ from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 
-from errbudget.ensemble import n_steps_for
-from errbudget.quantities import Trajectory
-from errbudget.schemes import get_scheme, integrate
+from errbudget.solve.ensemble import n_steps_for
+from errbudget.solve.tableaux import get_scheme, integrate
+from errbudget.solve.trajectory import Trajectory
 
 COVERAGE = 2.0  # common practice, no source: k = 2 coverage of |E| against u_val
 MIN_EXCEED = 3  # this many count times beyond k u_val flag model-form error ...
@@ -40,7 +40,7 @@ def observation_sd(error_model: str, mu: np.ndarray, nuisance: Mapping[str, floa
     Poisson: sqrt(mu). Negative binomial (NB2, var = mu + mu^2 / k; Hilbe 2011, Negative
     Binomial Regression, 2nd ed., Cambridge University Press): sqrt(mu + mu^2 / k).
     Normal: sigma. Lognormal with ln D ~ N(ln mu, s^2), i.e. mu the median as in
-    :mod:`errbudget.fitting`: mu exp(s^2 / 2) sqrt(exp(s^2) - 1) (the sd of a lognormal
+    :mod:`errbudget.uncertainty.fitting`: mu exp(s^2 / 2) sqrt(exp(s^2) - 1) (the sd of a lognormal
     variable; Johnson, Kotz & Balakrishnan 1994, Continuous Univariate Distributions vol. 1,
     ch. 14, recalled). Where mu is the mean instead this reduces to mu sqrt(exp(s^2) - 1).
 

@@ -14,13 +14,11 @@ from pathlib import Path
 
 import numpy as np
 
-from errbudget import models
-from errbudget.case_reader import CaseReader
-from errbudget.distributions import Distribution
-from errbudget.errors import InputError, did_you_mean
-from errbudget.parameters import Parameter, builtin_parameters, custom_model
-from errbudget.schemes import get_scheme
-from errbudget.units import (
+from errbudget.case.distributions import Distribution
+from errbudget.case.limits import MAX_FINEST_STEPS
+from errbudget.case.parameters import Parameter, builtin_parameters, custom_model
+from errbudget.case.reader import CaseReader
+from errbudget.case.units import (
     check_population_unit,
     ensure_count_units,
     format_unit,
@@ -28,32 +26,21 @@ from errbudget.units import (
     parse_unit,
     ureg,
 )
+from errbudget.errors import InputError, did_you_mean
+from errbudget.laws import models
+from errbudget.solve.problem import QUANTITY_KINDS, QuantitySpec
+from errbudget.solve.tableaux import get_scheme
 
 TOP_KEYS = ("title", "model", "parameters", "simulation", "quantity", "budget", "counts")
 MODEL_KEYS = ("form", "unit", "rate")
 SIMULATION_KEYS = ("scheme", "step", "horizon")
 QUANTITY_KEYS = ("name", "kind", "at", "level")
-QUANTITY_KINDS = ("value", "time-to", "peak", "minimum")
 BUDGET_KEYS = ("fraction", "samples", "seed", "percentile", "level", "memory_limit")
 COUNTS_KEYS = ("file", "time", "time_unit", "count", "error", "fit", "start")
 ERROR_MODELS = ("poisson", "negative-binomial", "lognormal", "normal")
 MAX_CASE_BYTES = 1_000_000  # a case file is a few kilobytes; refuse anything absurd
 MIN_SAMPLES = 16  # smallest Sobol base sample (see spread.MIN_BASE_SAMPLES)
 DEFAULT_MEMORY_LIMIT_MB = 4096  # resource ceiling for one run, overridable per case
-
-
-@dataclass(frozen=True)
-class QuantitySpec:
-    """A forecast quantity of interest; ``at`` [T] for values, ``level`` [P] for time-to."""
-
-    name: str
-    kind: str
-    at: float | None = None
-    level: float | None = None
-
-    @property
-    def unit_kind(self) -> str:
-        return "time" if self.kind == "time-to" else "population"
 
 
 @dataclass(frozen=True)
@@ -228,12 +215,11 @@ def load_case(path: str | Path) -> Case:
 def _check_step_count(reader: CaseReader, step: float, horizon: float, time_unit) -> None:
     """Refuse a step so small that the refinement ladder could not halve it twice.
 
-    The ladder (errbudget.ladder) needs the case's step and at least two halvings, and stops
-    at ``MAX_STEPS`` steps on its finest level; a case beyond that would fail mid-run.
+    The ladder (errbudget.estimates.ladder) needs the case's step and at least two
+    halvings, and stops at ``MAX_FINEST_STEPS`` steps on its finest level; a case beyond
+    that would fail mid-run.
     """
-    from errbudget.ladder import MAX_STEPS, RATIO  # lazy: ladder imports this module
-
-    most = MAX_STEPS // RATIO**2
+    most = MAX_FINEST_STEPS // 4  # the case's step halved twice must fit
     if horizon / step > most:
         label = format_unit(time_unit)
         raise reader.fail(

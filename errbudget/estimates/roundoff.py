@@ -11,8 +11,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from errbudget.case import Case
-from errbudget.ensemble import n_steps_for, nominal_params, quantity_values, solve
+from errbudget.case.load import Case
+from errbudget.solve.ensemble import n_steps_for, nominal_params, quantity_values, solve
 
 UNIT_ROUNDOFF = {np.float32: 2.0**-24, np.float64: 2.0**-53}
 
@@ -96,7 +96,7 @@ def reference_values(case: Case) -> np.ndarray:
     the others (and laws without one) use classical RK4 in long double at a fine step, whose
     error C h^4 is far below the binary64 round-off of the runs compared with it.
     """
-    from errbudget.schemes import get_scheme
+    from errbudget.solve.tableaux import get_scheme
 
     params = nominal_params(case)
     fine = case.step / REFERENCE_REFINEMENT
@@ -189,7 +189,7 @@ def error_curve(case: Case, dtype=np.float64, steps=None) -> dict:
         when the fit found no round-off and D is the largest value the points allow) and
         ``statement``.
     """
-    from errbudget.schemes import get_scheme
+    from errbudget.solve.tableaux import get_scheme
 
     if dtype not in UNIT_ROUNDOFF:
         raise ValueError(f"dtype must be one of {list(UNIT_ROUNDOFF)}, not {dtype!r}")

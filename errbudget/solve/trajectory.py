@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from errbudget.case import QuantitySpec
+from errbudget.solve.problem import QuantitySpec
 
 GRID_TOLERANCE = 1e-9  # relative distance below which a time counts as a grid point
 BISECTION_ITERATIONS = 53  # halvings of [0, 1]: down to the spacing of doubles near 1

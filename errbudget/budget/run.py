@@ -14,13 +14,14 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 from scipy import stats
 
-from errbudget import artefacts, ladder, roundoff, stability, sweep
-from errbudget.budget import STEP_MULTIPLES, assemble, recommend, steps_to_try
-from errbudget.case import Case
-from errbudget.ensemble import ensemble_params, n_steps_for, nominal_params, solve
+from errbudget.budget import passes as sweep
+from errbudget.budget.build import STEP_MULTIPLES, assemble, recommend, steps_to_try
+from errbudget.case.load import Case
 from errbudget.errors import InputError
-from errbudget.schemes import get_scheme
-from errbudget.spread import sample_design, sobol_indices, spread_summary
+from errbudget.estimates import artefacts, ladder, roundoff, stability
+from errbudget.solve.ensemble import ensemble_params, n_steps_for, nominal_params, solve
+from errbudget.solve.tableaux import get_scheme
+from errbudget.uncertainty.spread import sample_design, sobol_indices, spread_summary
 
 NOMINAL_POINTS = 2000  # most points of the accurate nominal run kept for the report
 BAND_PERCENTILES = (5.0, 50.0, 95.0)
@@ -69,7 +70,7 @@ def run_case(
     progress : callable, optional
         Called with a short label as each stage starts.
     fit : object, optional
-        A result of :func:`errbudget.calibrate.fit_from_counts` already computed.
+        A result of :func:`errbudget.uncertainty.calibrate.fit_from_counts` already computed.
 
     Returns
     -------
@@ -86,7 +87,7 @@ def run_case(
     joint = None
     if case.counts is not None:
         say("fitting the counts")
-        from errbudget.calibrate import fit_from_counts, joint_from_fit
+        from errbudget.uncertainty.calibrate import fit_from_counts, joint_from_fit
 
         fit = fit if fit is not None else fit_from_counts(case)
         joint = joint_from_fit(fit, flags)
@@ -191,7 +192,7 @@ def run_case(
     ]
     data["run"]["chunk_rows"] = sweep.chunk_rows(case, passed.finest_step, rows)
     if case.counts is not None and fit is not None:
-        from errbudget.validation import validate_run
+        from errbudget.estimates.validation import validate_run
 
         data["validation"] = validate_run(case, fit, passed.count_values)
         if data["validation"]["flag"] is not None:
@@ -276,7 +277,7 @@ def _better_data(
     Better data narrow the parameter spread, which shrinks the allowance for numerical
     error: the adequate step may become finer.
     """
-    from errbudget.spread import JointNormal
+    from errbudget.uncertainty.spread import JointNormal
 
     halved = JointNormal(
         names=joint.names,

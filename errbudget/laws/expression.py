@@ -15,15 +15,14 @@ from __future__ import annotations
 import ast
 import math
 import warnings
-from collections.abc import Callable, Collection, Mapping
+from collections.abc import Collection, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import pint
 
 from errbudget.errors import InputError, did_you_mean
-from errbudget.units import format_unit, ureg
+from errbudget.laws.evaluate import BINARY, REDUCE, Dual, Evaluator, dual_tree, finish, value_tree
 
 ALLOWED_FUNCTIONS = ("exp", "log", "sqrt", "abs", "min", "max")
 VARIABLES = ("N", "t")
@@ -36,15 +35,6 @@ MAX_LITERAL_EXPONENT = 64  # |literal exponent| above this is refused ("huge exp
 QUOTE_LENGTH = 60  # longest sub-expression quoted verbatim in a message
 
 _ONE_ARGUMENT = ("exp", "log", "sqrt", "abs")
-_UFUNC = {"exp": np.exp, "log": np.log, "sqrt": np.sqrt, "abs": np.abs}
-_REDUCE = {"min": np.minimum, "max": np.maximum}
-_BINARY = {
-    ast.Add: np.add,
-    ast.Sub: np.subtract,
-    ast.Mult: np.multiply,
-    ast.Div: np.divide,
-    ast.Pow: np.power,
-}
 _OPERATOR_TEXT = {
     ast.FloorDiv: "//",
     ast.Mod: "%",
@@ -75,12 +65,8 @@ _REFUSED = (
 _HINT = {ast.Compare: "; use min or max", ast.IfExp: "; use min, max or abs"}
 _WEAK = (float, int)  # Python scalars: numpy 2 lets the array operand choose the dtype
 
-Value = Any  # a Python float or a numpy array
-Evaluator = Callable[[Any, Any, Mapping[str, Any]], Value]
-Dual = Callable[[Any, Any, Mapping[str, Any]], tuple[Value, Value | None]]
 
-
-def _quote(node: ast.AST) -> str:
+def quote(node: ast.AST) -> str:
     text = ast.unparse(node)
     return text if len(text) <= QUOTE_LENGTH else text[: QUOTE_LENGTH - 3] + "..."
 
@@ -160,7 +146,7 @@ def _literal(node: ast.AST) -> float | int | None:
     return None
 
 
-def _free_names(node: ast.AST) -> set[str]:
+def free_names(node: ast.AST) -> set[str]:
     """Names of values in a checked tree (function names excluded)."""
     return {
         sub.id
@@ -203,7 +189,7 @@ class _Checker:
         elif isinstance(node, ast.Call):
             self.call(node, depth)
         elif not isinstance(node, ast.Expression):
-            self.fail(f"{type(node).__name__} ({_quote(node)}) is not allowed {_SUFFIX}")
+            self.fail(f"{type(node).__name__} ({quote(node)}) is not allowed {_SUFFIX}")
         else:
             self.check(node.body, depth + 1)
 
@@ -214,12 +200,12 @@ class _Checker:
         if isinstance(value, bool):
             self.fail(f"{value} is not a number; use 1 or 0")
         if isinstance(value, complex):
-            self.fail(f"complex numbers ({_quote(node)}) are not allowed {_SUFFIX}")
+            self.fail(f"complex numbers ({quote(node)}) are not allowed {_SUFFIX}")
         if type(value) not in _WEAK:
-            self.fail(f"{_quote(node)} is not allowed {_SUFFIX}; only numbers are")
+            self.fail(f"{quote(node)} is not allowed {_SUFFIX}; only numbers are")
         if abs(value) > MAX_LITERAL or not math.isfinite(float(value)):
             self.fail(
-                f"the number {_quote(node)} is too large: numbers must be finite and at "
+                f"the number {quote(node)} is too large: numbers must be finite and at "
                 f"most {MAX_LITERAL:g} in absolute value"
             )
 
@@ -244,7 +230,7 @@ class _Checker:
         self.used.add(ident)
 
     def binary(self, node: ast.BinOp, depth: int) -> None:
-        if type(node.op) not in _BINARY:
+        if type(node.op) not in BINARY:
             op = _OPERATOR_TEXT.get(type(node.op), type(node.op).__name__)
             hint = " (for a power write **)" if isinstance(node.op, ast.BitXor) else ""
             self.fail(f"the operator {op} is not allowed {_SUFFIX}; use + - * / **{hint}")
@@ -252,8 +238,8 @@ class _Checker:
             exponent = _literal(node.right)
             if exponent is not None and abs(exponent) > MAX_LITERAL_EXPONENT:
                 self.fail(
-                    f'huge exponents are not allowed: "{_quote(node)}" has exponent '
-                    f"{_quote(node.right)}; at most {MAX_LITERAL_EXPONENT} in absolute value"
+                    f'huge exponents are not allowed: "{quote(node)}" has exponent '
+                    f"{quote(node.right)}; at most {MAX_LITERAL_EXPONENT} in absolute value"
                 )
         self.check(node.left, depth + 1)
         self.check(node.right, depth + 1)
@@ -263,7 +249,7 @@ class _Checker:
         if not isinstance(func, ast.Name):
             self.check(func, depth + 1)  # reports x.y, x[i], lambda ... in the callee first
             self.fail(
-                f'"{_quote(node)}" does not call a function by name; only '
+                f'"{quote(node)}" does not call a function by name; only '
                 f"{_FUNCTION_LIST} can be called"
             )
         if "__" in func.id:
@@ -277,7 +263,7 @@ class _Checker:
                 f"functions are {_FUNCTION_LIST}"
             )
         if node.keywords:
-            self.fail(f'keyword arguments are not allowed in "{_quote(node)}"')
+            self.fail(f'keyword arguments are not allowed in "{quote(node)}"')
         for arg in node.args:
             if isinstance(arg, ast.Starred):
                 self.fail(f"starred arguments (*x) are not allowed {_SUFFIX}")
@@ -285,9 +271,9 @@ class _Checker:
             self.check(arg, depth + 1)
         count = len(node.args)
         if func.id in _ONE_ARGUMENT and count != 1:
-            self.fail(f'{func.id} takes exactly one argument, "{_quote(node)}" gives {count}')
-        if func.id in _REDUCE and count < 2:
-            self.fail(f'{func.id} needs two or more arguments, "{_quote(node)}" gives {count}')
+            self.fail(f'{func.id} takes exactly one argument, "{quote(node)}" gives {count}')
+        if func.id in REDUCE and count < 2:
+            self.fail(f'{func.id} needs two or more arguments, "{quote(node)}" gives {count}')
 
 
 def _checked(text: str, allowed: frozenset[str] | None, where: str):
@@ -302,195 +288,6 @@ def _checked(text: str, allowed: frozenset[str] | None, where: str):
     checker = _Checker(allowed, where)
     checker.check(tree, 0)
     return tree, frozenset(checker.used)
-
-
-# ------------------------------------------------------------------ closures (value tree)
-
-
-def _keep_weak(out: Value, *inputs: Value) -> Value:
-    """Return a Python float when every input was one, so the dtype of N is kept."""
-    return float(out) if all(type(x) in _WEAK for x in inputs) else out
-
-
-def _value_tree(node: ast.AST) -> Evaluator:
-    if isinstance(node, ast.Expression):
-        return _value_tree(node.body)
-    if isinstance(node, ast.Constant):
-        number = float(node.value)
-        return lambda t, n, p: number
-    if isinstance(node, ast.Name):
-        ident = node.id
-        if ident == "N":
-            return lambda t, n, p: n
-        if ident == "t":
-            return lambda t, n, p: t
-        return lambda t, n, p: p[ident]
-    if isinstance(node, ast.UnaryOp):
-        inner = _value_tree(node.operand)
-        if isinstance(node.op, ast.UAdd):
-            return inner
-        return lambda t, n, p: -inner(t, n, p)
-    if isinstance(node, ast.BinOp):
-        ufunc = _BINARY[type(node.op)]
-        left, right = _value_tree(node.left), _value_tree(node.right)
-
-        def binary(t, n, p):
-            a, b = left(t, n, p), right(t, n, p)
-            return _keep_weak(ufunc(a, b), a, b)
-
-        return binary
-    assert isinstance(node, ast.Call) and isinstance(node.func, ast.Name)
-    args = [_value_tree(arg) for arg in node.args]
-    if node.func.id in _UFUNC:
-        ufunc, (arg,) = _UFUNC[node.func.id], args
-
-        def function(t, n, p):
-            a = arg(t, n, p)
-            return _keep_weak(ufunc(a), a)
-
-        return function
-    pairwise = _REDUCE[node.func.id]
-
-    def reduce(t, n, p):
-        values = [f(t, n, p) for f in args]
-        out = values[0]
-        for value in values[1:]:
-            out = pairwise(out, value)
-        return _keep_weak(out, *values)
-
-    return reduce
-
-
-# ------------------------------------------------------- closures (forward-mode d/dN tree)
-
-
-def _op(ufunc: Callable[..., Value], *args: Value) -> Value:
-    """``ufunc(*args)`` through numpy (no ZeroDivisionError), weak when all args are."""
-    return _keep_weak(ufunc(*args), *args)
-
-
-def _plus(a: Value | None, b: Value | None) -> Value | None:
-    """Sum of two derivative terms where None stands for an exact zero."""
-    if a is None or b is None:
-        return b if a is None else a
-    return _op(np.add, a, b)
-
-
-def _times(a: Value | None, b: Value) -> Value | None:
-    return None if a is None else _op(np.multiply, a, b)
-
-
-def _dual_tree(node: ast.AST) -> Dual:
-    """Closure returning (f, df/dN); the derivative is None where it is exactly zero."""
-    if isinstance(node, ast.Expression):
-        return _dual_tree(node.body)
-    if isinstance(node, ast.Name) and node.id == "N":
-        return lambda t, n, p: (n, 1.0)
-    if isinstance(node, ast.Constant | ast.Name):
-        value = _value_tree(node)
-        return lambda t, n, p: (value(t, n, p), None)
-    if isinstance(node, ast.UnaryOp):
-        inner = _dual_tree(node.operand)
-        if isinstance(node.op, ast.UAdd):
-            return inner
-
-        def negate(t, n, p):
-            u, du = inner(t, n, p)
-            return -u, (None if du is None else -du)
-
-        return negate
-    if isinstance(node, ast.BinOp):
-        return _dual_binary(node)
-    return _dual_call(node)
-
-
-def _dual_binary(node: ast.BinOp) -> Dual:
-    left, right = _dual_tree(node.left), _dual_tree(node.right)
-    op = type(node.op)
-    ufunc = _BINARY[op]
-
-    def binary(t, n, p):
-        (u, du), (v, dv) = left(t, n, p), right(t, n, p)
-        f = _op(ufunc, u, v)
-        if op is ast.Add:
-            return f, _plus(du, dv)
-        if op is ast.Sub:
-            return f, _plus(du, None if dv is None else -dv)
-        if op is ast.Mult:  # (uv)' = u'v + uv'
-            return f, _plus(_times(du, v), _times(dv, u))
-        if op is ast.Div:  # (u/v)' = u'/v - (u/v) v'/v
-            first = None if du is None else _op(np.divide, du, v)
-            second = None if dv is None else _op(np.divide, _op(np.multiply, f, dv), v)
-            return f, _plus(first, None if second is None else -second)
-        if dv is None:  # (u^c)' = c u^(c-1) u'
-            return f, _times(du, _op(np.multiply, v, _op(np.power, u, v - 1)))
-        # (u^v)' = u^v (v' ln u + v u'/u)
-        inner = _plus(
-            _times(dv, _op(np.log, u)),
-            None if du is None else _op(np.divide, _op(np.multiply, v, du), u),
-        )
-        return f, _times(inner, f)
-
-    return binary
-
-
-_CHAIN = {  # d f(u) / du from u and f = f(u)
-    "exp": lambda u, f: f,
-    "log": lambda u, f: _op(np.divide, 1.0, u),
-    "sqrt": lambda u, f: _op(np.divide, 0.5, f),
-    "abs": lambda u, f: _op(np.sign, u),
-}
-
-
-def _dual_call(node: ast.Call) -> Dual:
-    name = node.func.id
-    args = [_dual_tree(arg) for arg in node.args]
-    if name in _UFUNC:
-        ufunc, chain, (arg,) = _UFUNC[name], _CHAIN[name], args
-
-        def function(t, n, p):
-            u, du = arg(t, n, p)
-            f = _op(ufunc, u)
-            return f, _times(du, chain(u, f))
-
-        return function
-    pairwise = _REDUCE[name]
-    keep_first = np.less_equal if pairwise is np.minimum else np.greater_equal
-
-    def reduce(t, n, p):
-        pairs = [f(t, n, p) for f in args]
-        out, dout = pairs[0]
-        for value, dvalue in pairs[1:]:
-            if dout is not None or dvalue is not None:
-                # the derivative of whichever argument is selected, elementwise
-                dout = np.where(
-                    keep_first(out, value),
-                    0.0 if dout is None else dout,
-                    0.0 if dvalue is None else dvalue,
-                )
-            out = _op(pairwise, out, value)
-        return out, dout
-
-    return reduce
-
-
-# ------------------------------------------------------------------------- public API
-
-
-def _finish(out: Value, n: np.ndarray, inputs: Mapping[str, Any]) -> np.ndarray:
-    """Broadcast ``out`` to the shape of N in a float dtype, never aliasing an input."""
-    dtype = np.result_type(out, n)
-    if not np.issubdtype(dtype, np.inexact):
-        dtype = np.dtype(np.float64)
-    shape = np.broadcast_shapes(np.shape(out), n.shape)
-    fresh = (
-        isinstance(out, np.ndarray)
-        and out is not n
-        and all(out is not value for value in inputs.values())
-    )
-    if fresh and out.shape == shape and out.dtype == dtype:
-        return out
-    return np.array(np.broadcast_to(np.asarray(out, dtype=dtype), shape))
 
 
 @dataclass(frozen=True)
@@ -522,8 +319,8 @@ class RateExpression:
     _dual: Dual = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "_value", _value_tree(self.tree))
-        object.__setattr__(self, "_dual", _dual_tree(self.tree))
+        object.__setattr__(self, "_value", value_tree(self.tree))
+        object.__setattr__(self, "_dual", dual_tree(self.tree))
 
     def _arguments(self, n, params: Mapping[str, Any]) -> np.ndarray:
         missing = self.names_used - set(params)
@@ -555,7 +352,7 @@ class RateExpression:
         """
         n = self._arguments(N, params)
         with np.errstate(all="ignore"):
-            return _finish(self._value(t, n, params), n, params)
+            return finish(self._value(t, n, params), n, params)
 
     def d_dN(self, t: float, N: np.ndarray, params: Mapping[str, np.ndarray | float]) -> np.ndarray:
         """Partial derivative df/dN [1 / time unit] at the same arguments as :meth:`evaluate`.
@@ -568,112 +365,7 @@ class RateExpression:
         n = self._arguments(N, params)
         with np.errstate(all="ignore"):
             derivative = self._dual(t, n, params)[1]
-            return _finish(0.0 if derivative is None else derivative, n, params)
-
-    def result_unit(self, units: Mapping[str, pint.Unit], where: str | None = None) -> pint.Unit:
-        """Unit of the rate from the units of ``N``, ``t`` and the parameters.
-
-        Parameters
-        ----------
-        units : mapping of str to pint.Unit
-            Unit of ``"N"``, ``"t"`` and every name in :attr:`names_used`.
-        where : str, optional
-            Location for messages; defaults to :attr:`where`.
-
-        Returns
-        -------
-        pint.Unit
-            E.g. crayfish / day for ``r*N*(1 - N/K)``. A dimension clash raises
-            :class:`~errbudget.errors.InputError` naming the sub-expression and its units.
-        """
-        return _UnitWalk(units, where or self.where).unit(self.tree.body)
-
-
-class _UnitWalk:
-    """Symbolic propagation of pint units through a checked tree."""
-
-    def __init__(self, units: Mapping[str, pint.Unit], where: str):
-        self.units = units
-        self.where = where
-
-    def fail(self, message: str) -> None:
-        raise InputError(message, where=self.where)
-
-    def unit(self, node: ast.AST) -> pint.Unit:
-        if isinstance(node, ast.Constant):
-            return ureg.dimensionless
-        if isinstance(node, ast.Name):
-            if node.id not in self.units:
-                raise ValueError(f'result_unit needs the unit of "{node.id}"')
-            return ureg.Unit(self.units[node.id])
-        if isinstance(node, ast.UnaryOp):
-            return self.unit(node.operand)
-        if isinstance(node, ast.BinOp):
-            return self.binary(node)
-        return self.call(node)
-
-    def same(self, node: ast.AST, first: ast.AST, other: ast.AST, what: str) -> pint.Unit:
-        a, b = self.unit(first), self.unit(other)
-        if a.dimensionality != b.dimensionality:
-            self.fail(
-                f'{what} in "{_quote(node)}": "{_quote(first)}" is in {format_unit(a)} but '
-                f'"{_quote(other)}" is in {format_unit(b)}'
-            )
-        return a
-
-    def binary(self, node: ast.BinOp) -> pint.Unit:
-        if isinstance(node.op, ast.Add | ast.Sub):
-            return self.same(
-                node,
-                node.left,
-                node.right,
-                "cannot add or subtract quantities of different dimensions",
-            )
-        base = self.unit(node.left)
-        if isinstance(node.op, ast.Mult):
-            return base * self.unit(node.right)
-        if isinstance(node.op, ast.Div):
-            return base / self.unit(node.right)
-        exponent = self.unit(node.right)
-        if not exponent.dimensionless:
-            self.fail(
-                f'the exponent in "{_quote(node)}" must be dimensionless, but '
-                f'"{_quote(node.right)}" is in {format_unit(exponent)}'
-            )
-        if base.dimensionless:
-            return ureg.dimensionless
-        if _free_names(node.right):
-            self.fail(
-                f'"{_quote(node.left)}" is in {format_unit(base)}, so the exponent in '
-                f'"{_quote(node)}" must be a constant number, not "{_quote(node.right)}"'
-                "; make the base dimensionless first, e.g. (N/K)**theta"
-            )
-        with np.errstate(all="ignore"):
-            power = float(_value_tree(node.right)(0.0, 0.0, {}))
-        if not math.isfinite(power) or abs(power) > MAX_LITERAL_EXPONENT:
-            self.fail(
-                f'the exponent of "{_quote(node)}" is {power:g}; a base in '
-                f"{format_unit(base)} needs an exponent of at most {MAX_LITERAL_EXPONENT} "
-                "in absolute value"
-            )
-        return base ** (int(power) if power.is_integer() else power)
-
-    def call(self, node: ast.Call) -> pint.Unit:
-        name = node.func.id
-        if name in _REDUCE:
-            for other in node.args[1:]:
-                self.same(node, node.args[0], other, f"{name} needs arguments of one dimension")
-            return self.unit(node.args[0])
-        inner = self.unit(node.args[0])
-        if name in ("exp", "log") and not inner.dimensionless:
-            self.fail(
-                f'{name} needs a dimensionless argument, but "{_quote(node.args[0])}" in '
-                f'"{_quote(node)}" is in {format_unit(inner)}; combine it with parameters '
-                "to cancel the unit, e.g. N/K or r*t"
-            )
-        if name in ("exp", "log"):
-            return ureg.dimensionless
-        return inner**0.5 if name == "sqrt" else inner
+            return finish(0.0 if derivative is None else derivative, n, params)
 
 
 def parse_rate(text: str, names: Collection[str], where: str = "model.rate") -> RateExpression:
@@ -701,7 +393,7 @@ def parse_rate(text: str, names: Collection[str], where: str = "model.rate") -> 
         errors (with the column), huge literals or exponents, and oversized input.
     """
     tree, used = _checked(text, frozenset(names), where)
-    uses_time = "t" in _free_names(tree)
+    uses_time = "t" in free_names(tree)
     return RateExpression(text, used, uses_time, tree, where)
 
 

@@ -12,12 +12,12 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from errbudget.case import Case
-from errbudget.counts import Counts, read_counts
-from errbudget.ensemble import solve
-from errbudget.fitting import FitResult, fit_counts
-from errbudget.schemes import SCHEMES
-from errbudget.spread import JointNormal
+from errbudget.case.counts import Counts, read_counts
+from errbudget.case.load import Case
+from errbudget.solve.ensemble import solve
+from errbudget.solve.tableaux import SCHEMES
+from errbudget.uncertainty.fitting import FitResult, fit_counts
+from errbudget.uncertainty.spread import JointNormal
 
 FIT_TOLERANCE = 1e-8  # relative change at the count times accepted from halving the step
 MAX_HALVINGS = 12

@@ -213,7 +213,7 @@ FORMS = (*BUILT_IN, "custom")
 
 # The right-hand side of each built-in law in the custom-expression language, written with
 # the same operations in the same order as its numpy lambda above. The compiled engine
-# (errbudget.engine) builds its kernels from these through the expression whitelist.
+# (errbudget.solve.engine) builds its kernels from these through the expression whitelist.
 RATE_TEXT: dict[str, str] = {
     "exponential": "r * N",
     "logistic": "r * N * (1 - N / K)",

@@ -1,0 +1,3 @@
+"""Parameter uncertainty: the Saltelli design, Sobol indices, observation models and the
+fit of parameters to field counts.
+"""
