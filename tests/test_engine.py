@@ -117,7 +117,7 @@ def _draws(case, size=MEMBERS):
 def test_solve_uses_compiled_engine_and_matches_numpy(name, monkeypatch):
     case = load_case(CASES / name)
     params = _draws(case)
-    assert ensemble._compiled(case.model, SCHEMES[case.scheme]) is not None
+    assert ensemble.compiled(case.model, SCHEMES[case.scheme]) is not None
     fast = ensemble.solve(case, params, case.step / 4)
     monkeypatch.setattr(ensemble, "USE_COMPILED", False)
     slow = ensemble.solve(case, params, case.step / 4)

@@ -1,7 +1,8 @@
-"""One run of a case: (fit) -> ensemble -> ladder -> estimates -> budget.
+"""One run of a case, in the order the data flow: (fit) -> ladder -> design -> reference pass
+-> estimates -> step search -> budget.json.
 
-Data flow one way; nothing here reads or writes files except through ``fit_from_counts``
-(which reads the counts file named by the case). The CLI writes the outputs.
+Nothing here reads or writes files except through ``fit_from_counts`` (which reads the counts
+file named by the case). The CLI writes the outputs.
 """
 
 from __future__ import annotations
@@ -12,19 +13,20 @@ from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy import stats
 
-from errbudget.budget import passes as sweep
-from errbudget.budget.build import STEP_MULTIPLES, assemble, recommend, steps_to_try
+from errbudget.budget import passes, series
+from errbudget.budget.build import Evidence, RunFacts, budget_json
+from errbudget.budget.passes import Candidates, Ensemble, ReferencePass
+from errbudget.budget.search import recommend
 from errbudget.case.load import Case
 from errbudget.errors import InputError
 from errbudget.estimates import artefacts, ladder, roundoff, stability
-from errbudget.solve.ensemble import ensemble_params, n_steps_for, nominal_params, solve
+from errbudget.estimates.drivers import drivers
+from errbudget.estimates.errors import discretisation_errors
+from errbudget.solve.ensemble import ensemble_params, n_steps_for
 from errbudget.solve.tableaux import get_scheme
 from errbudget.uncertainty.spread import sample_design, sobol_indices, spread_summary
 
-NOMINAL_POINTS = 2000  # most points of the accurate nominal run kept for the report
-BAND_PERCENTILES = (5.0, 50.0, 95.0)
 REFERENCE_DEPTH = 8  # reference step = predicted adequate step / this (candidate, half, margin)
 
 
@@ -43,10 +45,26 @@ class Budget:
         return bool(self.data["verdict"]["adequate"])
 
 
-def estimate_memory_mb(case: Case, rows: int, finest_step: float) -> float:
-    """Peak memory of the ensemble runs [MB]: one chunk of trajectories and per-member results."""
-    levels = 2 * len(STEP_MULTIPLES) + 3
-    return sweep.memory_mb(case, rows, finest_step, len(case.quantities), levels)
+class _Clock:
+    """Wall time of each stage of the run, and the progress callback's labels."""
+
+    def __init__(self, say: Callable[[str], None]):
+        self.say = say
+        self.stages: dict[str, float] = {}
+        self.started = self.last = time.perf_counter()
+        self.current: str | None = None
+
+    def stage(self, name: str, label: str | None = None) -> None:
+        now = time.perf_counter()
+        if self.current is not None:
+            self.stages[self.current] = self.stages.get(self.current, 0.0) + now - self.last
+        self.current, self.last = name, now
+        if label:
+            self.say(label)
+
+    def elapsed(self) -> float:
+        self.stage("done")
+        return time.perf_counter() - self.started
 
 
 def run_case(
@@ -76,17 +94,15 @@ def run_case(
     -------
     Budget
     """
-    say = progress or (lambda label: None)
-    started = time.perf_counter()
+    clock = _Clock(progress or (lambda label: None))
     n_base = samples if samples is not None else case.budget.samples
     seed = seed if seed is not None else case.budget.seed
     scheme = get_scheme(case.scheme)
     flags: list[dict] = []
 
-    independent = case.uncertain()
-    joint = None
+    independent, joint = case.uncertain(), None
     if case.counts is not None:
-        say("fitting the counts")
+        clock.stage("fit", "fitting the counts")
         from errbudget.uncertainty.calibrate import fit_from_counts, joint_from_fit
 
         fit = fit if fit is not None else fit_from_counts(case)
@@ -95,109 +111,126 @@ def run_case(
             independent = {k: v for k, v in independent.items() if k not in joint.names}
             case = with_fitted_nominal(case, fit)
 
-    say("choosing the refinement ladder")
-    steps_info = ladder.build(case)
-    steps = steps_info["steps"]
-    if steps_info["capped"]:
-        flags.append(
-            {
-                "code": "ladder-capped",
-                "message": (
-                    f"the observed order did not settle at the formal order {scheme.order} within "
-                    f"{len(steps)} levels (finest step {steps[-1]:g} {case.time_unit}); the "
-                    "discretisation estimates are less certain"
-                ),
-            }
-        )
+    clock.stage("ladder", "choosing the refinement ladder")
+    chosen = ladder.build(case)
+    flags.extend(_ladder_flags(case, chosen, scheme.order))
 
-    if independent or joint is not None:
-        design = sample_design(independent, joint, n_base, seed)
-        sampled = design.values
-        rows = design.n_rows
-    else:
-        design, sampled, rows = None, {}, 1
-    _check_memory(case, rows, steps[-1])
-    params = ensemble_params(case, sampled)
+    clock.stage("design", "sampling the parameter design")
+    design = sample_design(independent, joint, n_base, seed) if independent or joint else None
+    rows = design.n_rows if design is not None else 1
+    _check_memory(case, rows, chosen.steps[-1])
+    sampled = design.values if design is not None else {}
     iid = design.independent_rows if design is not None else np.array([0])
-    members = np.sort(iid)[: sweep.SERIES_MEMBERS]
     count_times = fit.counts.times if fit is not None else None
+    ensemble = passes.ensemble_for(case, ensemble_params(case, sampled), iid, count_times)
 
-    say(f"ensemble at the case's step and the reference levels ({rows} parameter sets)")
-    passed = sweep.reference_pass(
-        case, params, scheme.order, steps[-2], steps[-1], members, count_times
+    clock.stage(
+        "reference pass",
+        f"ensemble at the case's step and the reference levels ({rows} parameter sets)",
     )
+    passed = passes.reference_pass(case, ensemble, scheme.order, chosen.steps[-2], chosen.steps[-1])
     errors = discretisation_errors(case, passed.case_values, passed.reference)
     deeper = _deeper_reference(
         case, errors, passed.reference, iid, scheme.order, passed.finest_step, rows, flags
     )
     if deeper is not None:
-        say("refining the reference for a fine step")
-        passed = sweep.reference_pass(
-            case, params, scheme.order, 2 * deeper, deeper, members, count_times
+        clock.say("refining the reference for a fine step")
+        passed = passes.reference_pass(
+            case,
+            ensemble,
+            scheme.order,
+            2 * deeper,
+            deeper,
+            reuse={case.step: passed.levels[case.step]},
         )
         errors = discretisation_errors(case, passed.case_values, passed.reference)
-    reference = passed.reference
-    flags.extend(
-        artefacts.flags(passed.masks, f"at the case's step of {case.step:g} {case.time_unit}")
-    )
+    where = f"at the case's step of {case.step:g} {case.time_unit}"
+    flags.extend(artefacts.flags(passed.masks, where))
 
-    say("parameter spread and Sobol indices")
-    spreads, indices = _spreads(case, design, reference, iid, seed)
+    clock.stage("estimates", "parameter spread, Sobol indices and round-off")
+    spreads, indices = _spreads(case, design, passed.reference, iid, seed)
     flags.extend(_unsettled_indices(case, indices))
-    drivers = _drivers(errors, sampled, design)
-    say("round-off")
+    found_drivers = (
+        drivers(errors, sampled) if design is not None else [None] * len(case.quantities)
+    )
     rounding = roundoff.measure(case, case.step)
-    law = {k: v for k, v in params.items() if k != "N0"}
-    limits = stability.step_limits(case.model, scheme, law)
+    limits = _limits(case, scheme, ensemble)
 
-    say("searching for the coarsest adequate step")
-    recommendation = _recommend(case, params, reference, passed, spreads, limits)
-    series = _series(case, passed, errors)
-    series["stability"] = _stability_map(case, sampled, limits, members)
+    clock.stage("search", "searching for the coarsest adequate step")
+    candidates = Candidates(case, ensemble, passed)
+    recommendation = recommend(
+        case, candidates, passed.reference, spreads=spreads, limits=limits, scale=passed.scale
+    )
+    clock.stage("series", "series for the report")
+    report_series = series.series(case, passed, errors)
+    report_series["stability"] = series.stability_map(case, sampled, limits, ensemble.members)
     if fit is not None:
-        series["counts"] = {
+        report_series["counts"] = {
             "times": np.asarray(fit.counts.times, float),
             "counts": np.asarray(fit.counts.counts, float),
         }
-    elapsed = time.perf_counter() - started
-    data = assemble(
-        case,
-        scheme=scheme,
-        steps_info=steps_info,
-        case_values=passed.case_values,
-        reference=reference,
-        errors=errors,
-        spreads=spreads,
-        indices=indices,
-        drivers=drivers,
-        rounding=rounding,
-        limits=limits,
-        flags=flags,
-        recommendation=recommendation,
-        fit=fit,
-        design_rows=rows,
-        n_base=n_base,
-        seed=seed,
-        elapsed=elapsed,
-        series=series,
-    )
-    data["better_data"] = (
-        _better_data(case, joint, independent, n_base, seed, passed, limits, recommendation)
-        if joint is not None
-        else None
-    )
-    data["run"]["reference_steps"] = [
-        {"value": passed.finer_step, "unit": case.time_unit},
-        {"value": passed.finest_step, "unit": case.time_unit},
-    ]
-    data["run"]["chunk_rows"] = sweep.chunk_rows(case, passed.finest_step, rows)
+    better = None
+    if joint is not None:
+        clock.stage("better data", "what better data would buy")
+        better = _better_data(
+            case, joint, independent, n_base, seed, passed, limits, recommendation
+        )
+    validation = None
     if case.counts is not None and fit is not None:
+        clock.stage("validation", "comparing with the counts")
         from errbudget.estimates.validation import validate_run
 
-        data["validation"] = validate_run(case, fit, passed.count_values)
-        if data["validation"]["flag"] is not None:
-            data["flags"].append(data["validation"]["flag"])
-    return Budget(data, series)
+        validation = validate_run(case, fit, passed.count_values)
+    evidence = Evidence(chosen, errors, spreads, indices, found_drivers, rounding, limits,
+                        recommendation, report_series)  # fmt: skip
+    facts = RunFacts(
+        samples=n_base,
+        seed=seed,
+        parameter_sets=rows,
+        reference_steps=(passed.finer_step, passed.finest_step),
+        elapsed=clock.elapsed(),
+        stages=clock.stages,
+        work={"member_steps": int(sum(lv.member_steps for lv in candidates.levels.values()))},
+    )
+    data = budget_json(
+        case, scheme, evidence, flags, fit=fit, run=facts, better_data=better, validation=validation
+    )
+    return Budget(data, report_series)
+
+
+def _ladder_flags(case: Case, chosen: ladder.Ladder, order: int) -> list[dict]:
+    if not chosen.capped:
+        return []
+    return [
+        {
+            "code": "ladder-capped",
+            "message": (
+                f"the observed order did not settle at the formal order {order} within "
+                f"{len(chosen.steps)} levels (finest step {chosen.steps[-1]:g} "
+                f"{case.time_unit}); the discretisation estimates are less certain"
+            ),
+        }
+    ]
+
+
+def _limits(case: Case, scheme, ensemble: Ensemble) -> dict:
+    """Step limits from linear stability, per member, and at the first member."""
+    law = {k: v for k, v in ensemble.params.items() if k != "N0"}
+    limits = stability.step_limits(case.model, scheme, law)
+    stable = limits["stable"]
+    limits["stable_nominal"] = stable[0] if stable.size else None
+    return limits
+
+
+def estimate_memory_mb(case: Case, rows: int, finest_step: float) -> float:
+    """Peak memory of the ensemble work [MB]: per-member results of every level and of the
+    design, and the report's series. Nothing grows with the number of steps (the passes
+    stream; ``finest_step`` is kept for callers that compare steps)."""
+    quantities = len(case.quantities)
+    levels = 6  # case step, finer, finest, and the candidates the search keeps
+    per_member = rows * (quantities * 2 + 12) * levels * 8
+    series_bytes = 2 * min(rows, passes.SERIES_MEMBERS) * passes.SERIES_POINTS * 8
+    return (per_member + series_bytes) / 1e6
 
 
 def _check_memory(case: Case, rows: int, finest_step: float) -> None:
@@ -244,21 +277,6 @@ def _spreads(case: Case, design, reference, iid, seed) -> tuple[list[dict], list
     return spreads, indices
 
 
-def _recommend(case: Case, params, reference, passed, spreads, limits) -> dict:
-    """Evaluate every candidate step (and its half) in one sweep, then pick the coarsest."""
-    wanted, _ = steps_to_try(case, passed.finest_step, limits)
-    evaluated = sweep.candidate_pass(case, params, passed.finest_step, wanted)
-    return recommend(
-        case,
-        evaluated,
-        reference,
-        finest=passed.finest_step,
-        spreads=spreads,
-        limits=limits,
-        scale=passed.scale,
-    )
-
-
 def with_fitted_nominal(case: Case, fit) -> Case:
     """The case with its fitted parameters' nominal values set to the estimates."""
     estimates = dict(zip(fit.result.names, fit.result.values, strict=True))
@@ -270,7 +288,7 @@ def with_fitted_nominal(case: Case, fit) -> Case:
 
 
 def _better_data(
-    case: Case, joint, independent, n_base, seed, passed, limits, recommendation
+    case: Case, joint, independent, n_base, seed, passed: ReferencePass, limits, recommendation
 ) -> dict:
     """The budget again as if the counts were doubled: the fitted covariance halved.
 
@@ -287,45 +305,39 @@ def _better_data(
         log_scale=joint.log_scale,
     )
     design = sample_design(independent, halved, n_base, seed)
-    params = ensemble_params(case, design.values)
-    members = np.sort(design.independent_rows)[: sweep.SERIES_MEMBERS]
-    again = sweep.reference_pass(
-        case,
-        params,
-        get_scheme(case.scheme).order,
-        passed.finer_step,
-        passed.finest_step,
-        members,
-        None,
+    ensemble = passes.ensemble_for(
+        case, ensemble_params(case, design.values), design.independent_rows
     )
+    order = get_scheme(case.scheme).order
+    again = passes.reference_pass(case, ensemble, order, passed.finer_step, passed.finest_step)
     spreads = [
         spread_summary(again.reference[q, design.independent_rows], case.budget.level)
         for q in range(len(case.quantities))
     ]
-    better = _recommend(case, params, again.reference, again, spreads, limits)
-    now, then = recommendation["step"], better["step"]
-    unit = case.time_unit
+    better = recommend(
+        case, Candidates(case, ensemble, again), again.reference, spreads=spreads,
+        limits=limits, scale=again.scale,
+    )  # fmt: skip
+    return {
+        "assumption": "twice as many counts of the same quality: the covariance of the fitted "
+        "parameters halved",
+        "recommended_step": {"value": better.step, "unit": case.time_unit},
+        "parameter_sd": {spec.name: spreads[q]["sd"] for q, spec in enumerate(case.quantities)},
+        "statement": _better_statement(case, recommendation.step, better),
+    }
+
+
+def _better_statement(case: Case, now: float | None, better) -> str:
+    then, unit = better.step, case.time_unit
     if then is None:
-        statement = (
-            f"With twice as many counts no candidate step would qualify: {better['reason']}."
-        )
-    elif now is not None and then < now:
-        statement = (
+        return f"With twice as many counts no candidate step would qualify: {better.reason}."
+    if now is not None and then < now:
+        return (
             f"With twice as many counts the parameter spread narrows and the coarsest "
             f"adequate step would become {then:g} {unit} (now {now:g} {unit}): better "
             "data demand a finer step."
         )
-    else:
-        statement = (
-            f"With twice as many counts the coarsest adequate step would be {then:g} {unit}."
-        )
-    return {
-        "assumption": "twice as many counts of the same quality: the covariance of the fitted "
-        "parameters halved",
-        "recommended_step": {"value": then, "unit": unit},
-        "parameter_sd": {spec.name: spreads[q]["sd"] for q, spec in enumerate(case.quantities)},
-        "statement": statement,
-    }
+    return f"With twice as many counts the coarsest adequate step would be {then:g} {unit}."
 
 
 def _deeper_reference(
@@ -373,104 +385,3 @@ def _deeper_reference(
         )
         return None
     return step
-
-
-def discretisation_errors(case: Case, values: np.ndarray, reference: np.ndarray) -> np.ndarray:
-    """|value - reference| per quantity and member, shape (Q, S).
-
-    A time-to level reached by one solution but not the other within the horizon gets the
-    lower bound |horizon - t|; where neither reaches it the error is 0 (nothing to compare).
-    Members whose run diverged keep an infinite error.
-    """
-    with np.errstate(invalid="ignore"):
-        errors = np.abs(values - reference)
-    for q, spec in enumerate(case.quantities):
-        if spec.kind != "time-to":
-            continue
-        v, ref = values[q], reference[q]
-        neither = np.isnan(v) & np.isnan(ref)
-        one = np.isnan(v) ^ np.isnan(ref)
-        found = np.where(np.isnan(v), ref, v)
-        errors[q] = np.where(neither, 0.0, np.where(one, np.abs(case.horizon - found), errors[q]))
-    errors[np.isnan(errors)] = np.inf
-    return errors
-
-
-def _most_correlated(target: np.ndarray, sampled: dict) -> dict | None:
-    """The input whose Spearman rank correlation with ``target`` is largest in size.
-
-    Non-finite entries of ``target`` are left out; returns {"name", "rho"} or None.
-    """
-    finite = np.isfinite(target)
-    best = None
-    for name, values in sampled.items():
-        if np.ptp(values[finite]) == 0:
-            continue
-        rho = float(stats.spearmanr(values[finite], target[finite]).statistic)
-        if math.isfinite(rho) and (best is None or abs(rho) > abs(best["rho"])):
-            best = {"name": name, "rho": rho}
-    return best
-
-
-def _drivers(errors: np.ndarray, sampled: dict, design) -> list[dict | None]:
-    """Per quantity: the input whose rank correlation with the discretisation error is largest."""
-    result = []
-    for q in range(errors.shape[0]):
-        finite = np.isfinite(errors[q])
-        usable = design is not None and finite.sum() > 10 and np.ptp(errors[q][finite]) > 0
-        result.append(_most_correlated(errors[q], sampled) if usable else None)
-    return result
-
-
-def _stability_map(case: Case, sampled: dict, limits: dict, members: np.ndarray) -> dict | None:
-    """Per-member step limits against the input they depend on most, for the report."""
-    stable = np.asarray(limits["stable"], dtype=float)
-    if stable.size < 2 or not np.isfinite(stable).any() or not sampled:
-        return None
-    found = _most_correlated(stable, sampled)
-    if found is None or found["rho"] == 0:
-        return None
-    best, best_rho = found["name"], found["rho"]
-    monotone = np.asarray(limits["monotone"], dtype=float)
-    return {
-        "parameter": best,
-        "unit": case.parameters[best].unit,
-        "values": sampled[best][members],
-        "stable": stable[members],
-        "monotone": monotone[members] if monotone.size == stable.size else None,
-        "rho": best_rho,
-    }
-
-
-def _series(case: Case, passed, errors) -> dict:
-    """Time series for the report: ensemble bands and the numerical error along the run.
-
-    Bands use the first SERIES_MEMBERS independent draws of the design, at up to
-    SERIES_POINTS times of the case's grid.
-    """
-    times = passed.series_index * case.step
-    fine, coarse = passed.series_fine, passed.series_coarse
-    with np.errstate(invalid="ignore"):
-        gap = np.abs(coarse - fine)
-        band = np.nanpercentile(fine, BAND_PERCENTILES, axis=1)
-        gap_high = np.nanpercentile(gap, 95.0, axis=1)
-    worst = int(np.nanargmax(gap_high)) if np.isfinite(gap_high).any() else 0
-    nominal = nominal_params(case)
-    accurate = solve(case, nominal, passed.finest_step)
-    keep = np.unique(
-        np.linspace(0, accurate.last_index, min(accurate.last_index + 1, NOMINAL_POINTS))
-        .round()
-        .astype(int)
-    )
-    coarse_nominal = solve(case, nominal, case.step)
-    return {
-        "times": times,
-        "fine_times": keep * passed.finest_step,
-        "band": band,
-        "error_p95": gap_high,
-        "worst_time": float(times[worst]),
-        "worst_error": float(gap_high[worst]) if np.isfinite(gap_high[worst]) else None,
-        "nominal_coarse": coarse_nominal.states[passed.series_index, 0],
-        "nominal_fine": accurate.states[keep, 0],
-        "errors": errors,
-    }

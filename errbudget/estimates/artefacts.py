@@ -1,7 +1,9 @@
 """Numerical artefacts: behaviour of the case's step that the accurate solution does not show.
 
 Each member of the ensemble is compared with its own solution on the finest level of the
-ladder, read at the case's grid times. An artefact counts only where the accurate solution
+ladder. Both levels are summarised while they are stepped (the
+:class:`~errbudget.solve.trajectory.Features` of each, on its own grid up to the horizon),
+and the summaries are compared here. An artefact counts only where the accurate solution
 does not show the same feature (a population that truly goes extinct is not an artefact).
 """
 
@@ -9,34 +11,51 @@ from __future__ import annotations
 
 import numpy as np
 
+from errbudget.solve.trajectory import Features, features
+
+CODES = ("negative", "overshoot", "oscillation", "divergence")  # the order they are listed in
 DIVERGENCE_FACTOR = 1e3  # |N| this many times the accurate solution's largest |N| is runaway
-FLAT_INCREMENT = 1e-9  # increments below this share of the largest |N| count as flat
 
 
-def _sign_changes(states: np.ndarray, scale: np.ndarray) -> np.ndarray:
-    """Sign changes of the increments, ignoring flat ones, per member; states (T, S)."""
-    increments = np.diff(states, axis=0)
-    threshold = FLAT_INCREMENT * scale
-    signs = (increments > threshold).astype(np.int8) - (increments < -threshold).astype(np.int8)
-    if signs.shape[0] < 2:
-        return np.zeros(states.shape[1], dtype=int)
-    # Carry the last non-flat sign forward over flat increments, then count the flips.
-    if signs.all():  # no flat increment at all (the usual case): no carrying needed
-        carried = signs
-    else:
-        rows = np.arange(signs.shape[0], dtype=np.int32)[:, None]
-        last = np.maximum.accumulate(np.where(signs != 0, rows, np.int32(0)), axis=0)
-        carried = np.take_along_axis(signs, last, axis=0)
-    flips = (carried[1:] != carried[:-1]) & (carried[1:] != 0) & (carried[:-1] != 0)
-    return flips.sum(axis=0).astype(int)
+def judge(coarse: Features, fine: Features, levels: np.ndarray) -> dict[str, np.ndarray]:
+    """Per-member artefact masks of a level against the accurate (finest) level.
 
+    Parameters
+    ----------
+    coarse, fine : Features
+        What the judged level and the accurate level did (each on its own grid, up to the
+        horizon; see :class:`errbudget.solve.trajectory.Features`).
+    levels : ndarray, shape (E, S)
+        The stable equilibria per member the features were taken against (NaN: absent).
 
-def _crosses(states: np.ndarray, level: np.ndarray) -> np.ndarray:
-    """Whether a member's states lie on both sides of ``level`` (strictly) at some point."""
+    Returns
+    -------
+    dict of str to bool ndarray (S,)
+        Keys ``divergence`` (non-finite, or |N| beyond DIVERGENCE_FACTOR times the accurate
+        solution's largest), ``negative`` (below zero where the accurate solution is not),
+        ``overshoot`` (both sides of a stable level the accurate solution approaches from one
+        side), ``oscillation`` (more turns of the increments than the accurate solution), and
+        ``sustained`` (oscillation still present in the last quarter of the run: a cycle, not
+        a transient). Nothing is flagged where the accurate solution itself failed.
+    """
+    fine_ok = fine.finite
     with np.errstate(invalid="ignore"):
-        above = (states > level * (1 + 1e-12) + 1e-300).any(axis=0)
-        below = (states < level * (1 - 1e-12) - 1e-300).any(axis=0)
-    return above & below
+        runaway = coarse.largest > DIVERGENCE_FACTOR * np.where(fine_ok, fine.largest, np.inf)
+    divergence = fine_ok & (~coarse.finite | runaway)
+    judged = fine_ok & ~divergence
+    negative = judged & (coarse.smallest < 0) & (fine.smallest >= 0)
+    valid = np.isfinite(np.asarray(levels, dtype=float).reshape(coarse.above.shape))
+    crossed = coarse.above & coarse.below & ~(fine.above & fine.below)
+    overshoot = judged & (valid & crossed).any(axis=0)
+    oscillation = judged & (coarse.turns > fine.turns)
+    sustained = oscillation & (coarse.late_turns > fine.late_turns + 1)
+    return {
+        "divergence": divergence,
+        "negative": negative,
+        "overshoot": overshoot,
+        "oscillation": oscillation,
+        "sustained": sustained,
+    }
 
 
 def detect(
@@ -44,65 +63,20 @@ def detect(
     fine: np.ndarray,
     stable_levels: list[np.ndarray],
     horizon_index: int,
-    *,
-    sustained: bool = True,
 ) -> dict[str, np.ndarray]:
-    """Per-member artefact masks.
+    """Artefact masks from stored states (T, S): a level and the accurate solution.
 
-    Parameters
-    ----------
-    coarse : ndarray, shape (T, S)
-        States on the case's grid [population].
-    fine : ndarray, shape (T, S)
-        The finest ladder level read at the same times [population].
-    stable_levels : list of ndarray (S,)
-        Values of stable equilibria per member (NaN where absent) [population].
-    horizon_index : int
-        Last grid index at or before the horizon.
-    sustained : bool
-        Also test whether oscillation persists (skipped when only presence matters).
-
-    Returns
-    -------
-    dict of str to bool ndarray (S,)
-        Keys ``divergence``, ``negative``, ``overshoot``, ``oscillation``, and ``sustained``
-        (oscillation still present in the last quarter of the run: a cycle, not a transient).
+    Both are given on the same grid, whose last point at or before the horizon is
+    ``horizon_index``; ``stable_levels`` lists per-member stable equilibria (S,) (NaN where
+    absent). A convenience over :func:`judge` for stored trajectories.
     """
-    coarse = coarse[: horizon_index + 1].astype(float)
-    fine = fine[: horizon_index + 1].astype(float)
-    with np.errstate(all="ignore"):
-        fine_ok = np.isfinite(fine).all(axis=0)
-        scale = np.where(fine_ok, np.abs(fine).max(axis=0), np.inf)
-        finite = np.isfinite(coarse).all(axis=0)
-        runaway = np.abs(np.where(np.isfinite(coarse), coarse, 0)).max(axis=0) > (
-            DIVERGENCE_FACTOR * scale
-        )
-        divergence = fine_ok & (~finite | runaway)
-        safe = np.where(np.isfinite(coarse), coarse, 0.0)
-        negative = fine_ok & ~divergence & (safe.min(axis=0) < 0) & (fine.min(axis=0) >= 0)
-        overshoot = np.zeros(coarse.shape[1], dtype=bool)
-        for level in stable_levels:
-            level = np.broadcast_to(level, overshoot.shape)
-            valid = np.isfinite(level)
-            crossed = _crosses(safe, level) & ~_crosses(fine, level)
-            overshoot |= valid & crossed
-        overshoot &= fine_ok & ~divergence
-        extra = _sign_changes(safe, scale) > _sign_changes(fine, scale)
-        oscillation = fine_ok & ~divergence & extra
-        tail = max(3, coarse.shape[0] // 4)
-        lasting = (
-            oscillation
-            & (_sign_changes(safe[-tail:], scale) > _sign_changes(fine[-tail:], scale) + 1)
-            if sustained and oscillation.any()
-            else np.zeros_like(oscillation)
-        )
-    return {
-        "divergence": divergence,
-        "negative": negative,
-        "overshoot": overshoot,
-        "oscillation": oscillation,
-        "sustained": lasting,
-    }
+    size = coarse.shape[1]
+    levels = np.array([np.broadcast_to(level, (size,)) for level in stable_levels]).reshape(
+        -1, size
+    )
+    return judge(
+        features(coarse, horizon_index, levels), features(fine, horizon_index, levels), levels
+    )
 
 
 MESSAGES = {

@@ -7,13 +7,17 @@ budget needs (the case's step and the finest levels).
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from errbudget.case.limits import MAX_FINEST_STEPS
 from errbudget.case.load import Case
 from errbudget.estimates.convergence import grid_convergence
-from errbudget.solve.ensemble import n_steps_for, nominal_params, quantity_values, solve
+from errbudget.solve.ensemble import n_steps_for, nominal_params
+from errbudget.solve.stream import stream
 from errbudget.solve.tableaux import get_scheme
+from errbudget.solve.trajectory import locate
 
 RATIO = 2  # constant refinement ratio of the ladder
 MIN_LEVELS = 5  # the case's step and four refinements
@@ -43,27 +47,47 @@ def settled(values: np.ndarray, formal: int) -> bool:
     return all(abs(p - formal) <= ORDER_TOLERANCE * formal for p in orders)
 
 
-def build(case: Case) -> dict:
-    """Choose the ladder on the nominal parameters.
+@dataclass(frozen=True)
+class Ladder:
+    """The refinement ladder chosen on the nominal parameters.
 
-    Returns
-    -------
-    dict
-        ``steps`` (coarsest first) [time], ``values`` (levels, Q) at nominal parameters,
-        ``settled`` per quantity, ``capped`` (bool), ``off_grid`` per quantity,
-        ``convergence``: per quantity a GridConvergence of the three finest levels, and
-        ``case_level``: per quantity a GridConvergence of the case's step and the next two.
+    Attributes
+    ----------
+    steps : list of float
+        Coarsest (the case's step) first [time].
+    values : ndarray (levels, Q)
+        Every quantity at nominal parameters on each level [quantity units].
+    settled : list of bool
+        Per quantity, whether the observed order settled (see :func:`settled`).
+    capped : bool
+        The ladder stopped at a cap before every quantity settled.
+    off_grid : list of bool
+        Per quantity, whether its time falls between grid points of the case's step.
+    convergence : list of GridConvergence or None
+        Per quantity, the three finest levels (None where a level is not finite).
+    case_level : list of GridConvergence or None
+        Per quantity, the case's step and the next two levels.
     """
+
+    steps: list[float]
+    values: np.ndarray
+    settled: list[bool]
+    capped: bool
+    off_grid: list[bool]
+    convergence: list
+    case_level: list
+
+
+def build(case: Case) -> Ladder:
+    """Choose the ladder on the nominal parameters: halve until every order settles."""
     scheme = get_scheme(case.scheme)
     params = nominal_params(case)
-    steps, rows, off_grid = [], [], None
+    steps, rows = [], []
     capped = False
     while True:
         step = case.step / RATIO ** len(steps)
-        values, off = quantity_values(case, solve(case, params, step))
+        rows.append(stream(case, params, [step])[0].values[:, 0])
         steps.append(step)
-        rows.append(values[:, 0])
-        off_grid = off if off_grid is None else off_grid
         table = np.array(rows)
         done = [settled(table[:, q], scheme.order) for q in range(table.shape[1])]
         if len(steps) >= MIN_LEVELS and all(done):
@@ -72,21 +96,18 @@ def build(case: Case) -> dict:
         if len(steps) >= MAX_LEVELS or next_steps > MAX_STEPS:
             capped = True
             break
-    table = np.array(rows)
-    convergence, case_level = [], []
-    for q in range(table.shape[1]):
-        column = table[:, q]
-        convergence.append(_safe_gci(column[-3:], steps[-3:], scheme.order))
-        case_level.append(_safe_gci(column[:3], steps[:3], scheme.order))
-    return {
-        "steps": steps,
-        "values": table,
-        "settled": done,
-        "capped": capped,
-        "off_grid": off_grid,
-        "convergence": convergence,
-        "case_level": case_level,
-    }
+    columns = table.T
+    return Ladder(
+        steps=steps,
+        values=table,
+        settled=done,
+        capped=capped,
+        off_grid=[
+            spec.kind == "value" and locate(spec.at, case.step)[0] < 0 for spec in case.quantities
+        ],
+        convergence=[_safe_gci(c[-3:], steps[-3:], scheme.order) for c in columns],
+        case_level=[_safe_gci(c[:3], steps[:3], scheme.order) for c in columns],
+    )
 
 
 def _safe_gci(values: np.ndarray, steps: list[float], formal: int):

@@ -23,7 +23,7 @@ from pathlib import Path
 
 CACHE_ENV = "ERRBUDGET_CACHE_DIR"  # overrides the per-user cache folder (tests, benchmarks)
 BLOCK = 512  # samples stepped together by one thread: 4 KB per state row, stays in L1
-FORMAT_VERSION = 4  # bump when the template changes, so stale modules are not reused
+FORMAT_VERSION = 6  # bump when the template changes, so stale modules are not reused
 
 _BINARY_TEXT = {ast.Add: "+", ast.Sub: "-", ast.Mult: "*", ast.Div: "/", ast.Pow: "**"}
 _FUNCTION_TEXT = {"exp": "math.exp", "log": "_log", "sqrt": "_sqrt", "abs": "abs"}
@@ -61,6 +61,8 @@ import math
 
 import numpy as np
 from numba import njit
+
+from errbudget.solve.stream_body import ADVANCE, SLOPE
 {helpers}
 
 @njit(cache=True, error_model="numpy")
@@ -84,6 +86,30 @@ def kernel(out, p, h, n_steps, lo, hi, t_factor, n_factor, out_factor):
             for s in range(m):
                 y = cur[s]
 {stages}
+
+
+@njit(ADVANCE, cache=True, error_model="numpy", nogil=True)
+def advance_block(ys, ys_next, fs, t, h, p, first, m, factors):
+    # one step of members first..first+m-1 from (t, ys): new states, slopes at (t, ys)
+    t_factor, n_factor, out_factor = factors[0], factors[1], factors[2]
+{hoist}
+{advance_times}
+    for j in range(m):
+        s = first + j
+{args}
+        y = ys[j]
+{advance_stages}
+        ys_next[j] = y_new
+        fs[j] = k0
+
+
+@njit(SLOPE, cache=True, error_model="numpy", nogil=True)
+def slope_block(ys, fs, t, p, first, m, factors):
+    t_factor, n_factor, out_factor = factors[0], factors[1], factors[2]
+    for j in range(m):
+        s = first + j
+{args}
+        fs[j] = rate(t * t_factor, ys[j] * n_factor{call}) * out_factor
 '''
 
 
@@ -151,6 +177,24 @@ def _stepping(scheme, args: str) -> dict[str, str]:
     }
 
 
+def _dedent(lines: str, levels: int) -> str:
+    """The same statements, ``levels`` indentation levels (4 spaces) further left."""
+    cut = 4 * levels
+    return "\n".join(
+        line[cut:] if line.startswith(" " * cut) else line for line in lines.split("\n")
+    )
+
+
+def _advance(scheme, args: str, call: str) -> dict[str, str]:
+    """One step of one member, in the operation order of the trajectory kernel above."""
+    body = _stepping(scheme, args)
+    stages = _dedent(body["stages"], 2).replace("new[s] = ", "y_new = ")
+    return {
+        "advance_times": _dedent(body["times"], 2),
+        "advance_stages": stages,
+    }
+
+
 def kernel_source(tree: ast.Expression, names: tuple[str, ...], scheme) -> str:
     """Module source of the rate and the ensemble kernel for a checked tree.
 
@@ -175,6 +219,9 @@ def kernel_source(tree: ast.Expression, names: tuple[str, ...], scheme) -> str:
     args = "".join(f", q{i}[s]" for i in range(len(names)))
     # each parameter row of the block, as a contiguous view
     unpack = "\n".join(f"        q{i} = p[{i}, first:last]" for i in range(len(names)))
+    # advance/slope read the member's parameters from its column of ``p``
+    one = "".join(f", a{i}" for i in range(len(names)))
+    fetch = "\n".join(f"        a{i} = p[{i}, s]" for i in range(len(names))) or "        pass"
     return _TEMPLATE.format(
         version=FORMAT_VERSION,
         helpers=_HELPERS,
@@ -183,6 +230,9 @@ def kernel_source(tree: ast.Expression, names: tuple[str, ...], scheme) -> str:
         unpack=unpack or "        pass",
         label=scheme.label,
         **_stepping(scheme, args),
+        **_advance(scheme, one, one),
+        args=fetch,
+        call=one,
         block=BLOCK,
     )
 

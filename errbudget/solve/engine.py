@@ -86,8 +86,11 @@ def rate_spec(model) -> RateSpec | None:
     )
 
 
-def kernel_for(spec: RateSpec, scheme: Scheme):
-    """The compiled kernel for ``spec`` and ``scheme`` (generated and loaded once), or None."""
+def module_for(spec: RateSpec, scheme: Scheme):
+    """The generated kernel module for ``spec`` and ``scheme`` (loaded once), or None.
+
+    The module holds ``kernel`` (whole trajectories) and ``stream`` (the streaming pass).
+    """
     numba = numba_module()
     if numba is None:
         return None
@@ -101,8 +104,40 @@ def kernel_for(spec: RateSpec, scheme: Scheme):
         module = importlib.util.module_from_spec(loader)
         sys.modules[name] = module  # numba's cache re-imports the module by name on load
         loader.loader.exec_module(module)
-        _KERNELS[source] = module.kernel
+        _KERNELS[source] = module
     return _KERNELS[source]
+
+
+def kernel_for(spec: RateSpec, scheme: Scheme):
+    """The compiled whole-trajectory kernel for ``spec`` and ``scheme``, or None."""
+    module = module_for(spec, scheme)
+    return None if module is None else module.kernel
+
+
+def parameter_rows(spec: RateSpec, params: Mapping[str, np.ndarray], size: int) -> np.ndarray:
+    """The law's parameters as rows (k, S) in the order of ``spec.names``, coherent units."""
+    rows = np.empty((max(len(spec.names), 1), size))
+    for index, (name, factor) in enumerate(zip(spec.names, spec.factors, strict=True)):
+        value = np.broadcast_to(np.asarray(params[name], dtype=np.float64), (size,))
+        # same product as case.py's coherent(p); skipped when exact (factor 1)
+        rows[index] = value * factor if factor != 1.0 else value
+    return rows
+
+
+def run_threaded(function, size: int, threads: int | None, *args) -> None:
+    """Call ``function(lo, hi, *args)`` on column ranges of ``size`` members, one per thread.
+
+    The compiled functions release the GIL and write only their own members' columns, so
+    the result does not depend on the thread count.
+    """
+    parts = _partition(size, threads if threads is not None else THREADS)
+    if len(parts) == 1:
+        function(*parts[0], *args)
+        return
+    pool = _pool(len(parts))
+    jobs = [pool.submit(function, lo, hi, *args) for lo, hi in parts]
+    for job in jobs:
+        job.result()
 
 
 def integrate_compiled(
@@ -124,26 +159,15 @@ def integrate_compiled(
     """
     y0 = np.array(n0, dtype=np.float64).reshape(-1)
     size = y0.size
-    rows = np.empty((max(len(spec.names), 1), size))
-    for index, (name, factor) in enumerate(zip(spec.names, spec.factors, strict=True)):
-        value = np.broadcast_to(np.asarray(params[name], dtype=np.float64), (size,))
-        # same product as case.py's coherent(p); skipped when exact (factor 1)
-        rows[index] = value * factor if factor != 1.0 else value
+    rows = parameter_rows(spec, params, size)
     out = np.empty((n_steps + 1, size))
     out[0] = y0
     factors = (spec.t_factor, spec.n_factor, spec.out_factor)
-    parts = _partition(size, threads if threads is not None else THREADS)
-    if len(parts) == 1:
-        kernel(out, rows, float(step), int(n_steps), 0, size, *factors)
-        return out
-    # The kernel releases the GIL: each thread fills its own columns of ``out``.
-    pool = _pool(len(parts))
-    jobs = [
-        pool.submit(kernel, out, rows, float(step), int(n_steps), lo, hi, *factors)
-        for lo, hi in parts
-    ]
-    for job in jobs:
-        job.result()
+
+    def fill(lo, hi):
+        kernel(out, rows, float(step), int(n_steps), lo, hi, *factors)
+
+    run_threaded(fill, size, threads)
     return out
 
 

@@ -13,7 +13,7 @@ from errbudget.solve.tableaux import Scheme, get_scheme, integrate
 from errbudget.solve.trajectory import Trajectory, evaluate
 
 USE_COMPILED = True  # False forces the numpy reference path (tests, benchmarks)
-_COMPILED: dict[tuple, tuple] = {}  # (id(law), scheme) -> (law, (kernel, spec) or None)
+_COMPILED: dict[tuple, tuple] = {}  # (id(law), scheme) -> (law, (module, spec) or None)
 
 
 def n_steps_for(horizon: float, step: float) -> int:
@@ -45,17 +45,19 @@ def solve(
     scheme = scheme or get_scheme(case.scheme)
     law = {name: np.asarray(value, dtype=dtype) for name, value in params.items() if name != "N0"}
     n_steps = n_steps_for(case.horizon, step)
-    compiled = _compiled(case.model, scheme) if np.dtype(dtype) == np.float64 else None
-    if compiled is not None:
-        kernel, spec = compiled
-        states = engine.integrate_compiled(kernel, spec, params["N0"], law, step, n_steps, scheme)
+    found = compiled(case.model, scheme) if np.dtype(dtype) == np.float64 else None
+    if found is not None:
+        module, spec = found
+        states = engine.integrate_compiled(
+            module.kernel, spec, params["N0"], law, step, n_steps, scheme
+        )
     else:  # the numpy reference: float32 / long double, or numba unavailable
         states = integrate(case.model.rate, params["N0"], law, step, n_steps, scheme, dtype=dtype)
     return Trajectory(states, step, case.horizon, case.model.rate, law)
 
 
-def _compiled(model, scheme: Scheme) -> tuple[object, engine.RateSpec] | None:
-    """The compiled kernel and rate description of ``model``, or None (use numpy).
+def compiled(model, scheme: Scheme) -> tuple[object, engine.RateSpec] | None:
+    """The generated kernel module and rate description of ``model``, or None (use numpy).
 
     Remembered per (law object, scheme): the tree walk and the kernel lookup happen once
     per process. Any failure to generate or compile falls back to the numpy path.
@@ -67,10 +69,10 @@ def _compiled(model, scheme: Scheme) -> tuple[object, engine.RateSpec] | None:
     if found is None or found[0] is not model:
         try:
             spec = engine.rate_spec(model)
-            kernel = engine.kernel_for(spec, scheme) if spec is not None else None
+            module = engine.module_for(spec, scheme) if spec is not None else None
         except Exception:  # noqa: BLE001 - e.g. a read-only cache folder: numpy still works
-            kernel = None
-        found = (model, (kernel, spec) if kernel is not None else None)
+            module = None
+        found = (model, (module, spec) if module is not None else None)
         _COMPILED[key] = found
     return found[1]
 

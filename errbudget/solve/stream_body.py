@@ -1,0 +1,373 @@
+"""The streaming kernel: every level of an ensemble stepped once, everything read off on the way.
+
+Compiled once (numba, cached beside this module). The law enters as two compiled functions
+passed in as arguments, generated per law by :mod:`errbudget.solve.codegen`: ``advance_block``
+steps a block of members (straight-line code that numba vectorises across members) and
+``slope_block`` evaluates the right-hand side; one call per step and block, so the indirect
+call costs nothing next to the block's arithmetic.
+
+For one block of members at a time, each level (a step size) is stepped from t = 0 to the
+end of its grid. After every step, the new grid point and the interval behind it are read
+off: the quantities (value at a time with the Hermite readout, first crossing of a level,
+peak and minimum with their times), the features of
+:class:`errbudget.solve.trajectory.Features`, the states kept for the report's series and
+the values at the count times. No trajectory is stored: memory is O(members x quantities x
+levels). The arithmetic repeats, operation for operation, the stored-trajectory path of
+:mod:`errbudget.solve.trajectory`, which the tests compare it with.
+"""
+
+# ruff: noqa: N803, N806, PLR0913
+from __future__ import annotations
+
+import math
+import warnings
+
+import numpy as np
+from numba import njit, types
+from numba.core.errors import NumbaExperimentalFeatureWarning
+
+from errbudget.solve import dense
+from errbudget.solve.codegen import BLOCK
+from errbudget.solve.dense import BISECTION_ITERATIONS, QUADRATIC_FLOOR
+from errbudget.solve.trajectory import CROSS_SHARE, FLAT_SHARE, GRID_TOLERANCE
+
+# Positions in the features array: kept as numbers so one float64 array carries them all.
+F_FINITE, F_LARGEST, F_SMALLEST, F_SCALE, F_TURNS, F_LATE = 0, 1, 2, 3, 4, 5
+F_LEVELS = 6  # then, per stable level e: above at F_LEVELS + 2e, below at F_LEVELS + 2e + 1
+VALUE, TIME_TO, PEAK, MINIMUM = 0, 1, 2, 3
+
+_F1, _F2, _F3 = types.float64[::1], types.float64[:, ::1], types.float64[:, :, ::1]
+_I1, _I2 = types.int64[::1], types.int64[:, ::1]
+# The law's two compiled pieces (see the module docstring), with ``factors`` the array
+# (t_factor, n_factor, out_factor) of errbudget.solve.engine.RateSpec:
+# advance_block(y, y_next, f, t, h, p, first, m, factors); slope_block(y, f, t, p, first, m,
+# factors). Member first + j of the parameter rows p (k, S) is y[j].
+ADVANCE = types.void(_F1, _F1, _F1, types.float64, types.float64, _F2, types.int64,
+                     types.int64, _F1)  # fmt: skip
+SLOPE = types.void(_F1, _F1, types.float64, _F2, types.int64, types.int64, _F1)
+STREAM = types.void(
+    types.FunctionType(ADVANCE), types.FunctionType(SLOPE), _F2, _F1, types.int64,
+    types.int64, _F1, _F1, _I1, _I1, _I1, types.float64, _I1, _F1, _I2, _I2, _F2, _I1, _I1,
+    _F1, _F2, _I2, _I1, types.int64, _I1, _I1, _F1, _I1, _F3, _F3, _F3, _F3, _F2,
+)  # fmt: skip
+
+hermite = njit(cache=True, error_model="numpy")(dense.hermite)
+cubic = njit(cache=True, error_model="numpy")(dense.cubic)
+derivative_coefficients = njit(cache=True, error_model="numpy")(dense.derivative_coefficients)
+
+
+@njit(cache=True, error_model="numpy")
+def _sign(x):
+    if x > 0.0:
+        return 1.0
+    if x < 0.0:
+        return -1.0
+    if x == 0.0:
+        return 0.0
+    return math.nan
+
+
+@njit(cache=True, error_model="numpy")
+def _better(value, time, best, best_time, largest):
+    """Whether a candidate replaces the best so far (NaN is kept once met; ties: earliest)."""
+    if best != best:
+        return False
+    if value != value:
+        return True
+    if largest:
+        return value > best or (value == best and time < best_time)
+    return value < best or (value == best and time < best_time)
+
+
+@njit(cache=True, error_model="numpy")
+def _crossing(y0, y1, d0, d1, level, side):
+    """Fraction of the interval where the Hermite cubic meets ``level`` (bisection)."""
+    c3, c2, c1 = cubic(y0, y1, d0, d1)
+    c0 = y0 - level
+    low, high = 0.0, 1.0
+    for _ in range(BISECTION_ITERATIONS):
+        mid = 0.5 * (low + high)
+        if _sign(((c3 * mid + c2) * mid + c1) * mid + c0) == side:
+            low = mid
+        else:
+            high = mid
+    return 0.5 * (low + high)
+
+
+@njit(cache=True, error_model="numpy", nogil=True)
+def step_level(
+    advance_block, slope_block, p, n0, first, m, factors, h, n_steps, last, tail, horizon,
+    kinds, levels, at_grid, at_index, at_s, end_grid, end_index, end_s, equilibria,
+    records, record_slot, counting, count_grid, count_index, count_s, count_slot,
+    values, times, features, kept, counted,
+):  # fmt: skip
+    """One level for one block of members: step, and read everything off as it goes.
+
+    The loops over the block's members are written without calls or data-dependent
+    branches where they run at every step, so that numba vectorises them; what happens
+    rarely (a crossing found, a read-off time reached) runs in loops of its own.
+    """
+    Q = kinds.size
+    E = equilibria.shape[0]
+    y, y_next, y_prev = n0[first : first + m].copy(), np.empty(m), np.empty(m)
+    f, f_prev = np.empty(m), np.empty(m)
+    finite_all = np.ones(m, dtype=np.bool_)
+    largest, smallest, scale = np.zeros(m), np.full(m, math.inf), np.zeros(m)
+    safe_prev = np.zeros(m)
+    sign_all, turns = np.zeros(m, dtype=np.int64), np.zeros(m, dtype=np.int64)
+    sign_late, late = np.zeros(m, dtype=np.int64), np.zeros(m, dtype=np.int64)
+    above, below = np.zeros((E, m), dtype=np.bool_), np.zeros((E, m), dtype=np.bool_)
+    high = np.empty((E, m))
+    low = np.empty((E, m))
+    for e in range(E):
+        for j in range(m):
+            high[e, j] = equilibria[e, first + j] * (1 + CROSS_SHARE) + 1e-300
+            low[e, j] = equilibria[e, first + j] * (1 - CROSS_SHARE) - 1e-300
+    side = np.zeros((Q, m))
+    found = np.zeros((Q, m), dtype=np.bool_)
+    hit = np.zeros(m, dtype=np.bool_)
+    best, best_time = np.zeros((Q, m)), np.zeros((Q, m))
+    out = np.full((Q, m), math.nan)
+    for q in range(Q):
+        for j in range(m):
+            side[q, j] = _sign(y[j] - levels[q])
+            best[q, j] = y[j]
+    record = 0
+    late_ok = last + 1 - tail >= 3  # as the trajectory path: fewer rows hold no turn
+    for n in range(n_steps + 1):
+        t = float(n) * h
+        if n < n_steps:  # the law's step over the block (vectorised in its own code)
+            advance_block(y, y_next, f, t, h, p, first, m, factors)
+        else:
+            slope_block(y, f, t, p, first, m, factors)
+        if n >= 1:
+            _interval(
+                n, m, first, y_prev, y, f_prev, f, h, last, horizon, kinds, levels, at_grid,
+                at_index, at_s, end_grid, end_index, end_s, side, found, hit, best, best_time,
+                out, counting, count_grid, count_index, count_s, count_slot, counted,
+            )  # fmt: skip
+        for j in range(m):
+            value = y[j]
+            finite = math.isfinite(value)
+            safe = value if finite else 0.0
+            scale[j] = max(scale[j], abs(safe))
+        if n <= last:
+            for j in range(m):
+                value = y[j]
+                finite = math.isfinite(value)
+                safe = value if finite else 0.0
+                finite_all[j] = finite_all[j] and finite
+                largest[j] = max(largest[j], abs(safe))
+                smallest[j] = min(smallest[j], safe)
+            for e in range(E):
+                for j in range(m):
+                    value = y[j] if math.isfinite(y[j]) else 0.0
+                    above[e, j] = above[e, j] or value > high[e, j]
+                    below[e, j] = below[e, j] or value < low[e, j]
+            if n >= 1 and last >= 2:
+                _count_turns(y, safe_prev, sign_all, turns, m)
+                if late_ok and n >= tail + 1:
+                    _count_turns(y, safe_prev, sign_late, late, m)
+            for q in range(Q):
+                if kinds[q] >= PEAK:
+                    largest_kind = kinds[q] == PEAK
+                    for j in range(m):
+                        if _better(y[j], t, best[q, j], best_time[q, j], largest_kind):
+                            best[q, j] = y[j]
+                            best_time[q, j] = t
+        _grid_point(
+            n, m, first, y, horizon, kinds, at_grid, end_grid, best, best_time, out,
+            counting, count_grid, count_slot, counted,
+        )  # fmt: skip
+        while record < records.size and records[record] == n:
+            for j in range(m):
+                slot = record_slot[first + j]
+                if slot >= 0:
+                    kept[record, slot] = y[j]
+            record += 1
+        for j in range(m):
+            safe_prev[j] = y[j] if math.isfinite(y[j]) else 0.0
+        y_prev, y, y_next = y, y_next, y_prev
+        f_prev, f = f, f_prev
+    for j in range(m):
+        s = first + j
+        features[F_FINITE, s] = 1.0 if finite_all[j] else 0.0
+        features[F_LARGEST, s] = largest[j]
+        features[F_SMALLEST, s] = smallest[j]
+        features[F_SCALE, s] = scale[j]
+        features[F_TURNS, s] = turns[j]
+        features[F_LATE, s] = late[j]
+        for e in range(E):
+            features[F_LEVELS + 2 * e, s] = 1.0 if above[e, j] else 0.0
+            features[F_LEVELS + 2 * e + 1, s] = 1.0 if below[e, j] else 0.0
+    _finish(first, m, horizon, kinds, side, found, best, best_time, out, values, times, n0,
+            finite_all)  # fmt: skip
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _count_turns(y, safe_prev, carried, turns, m):
+    """Sign changes of the increments (flat ones skipped), for every member of the block."""
+    for j in range(m):
+        value = y[j] if math.isfinite(y[j]) else 0.0
+        increment = value - safe_prev[j]
+        threshold = FLAT_SHARE * max(abs(value), abs(safe_prev[j]))
+        sign = (increment > threshold) * 1 - (increment < -threshold) * 1
+        flip = (sign != 0) and (carried[j] != 0) and (sign != carried[j])
+        turns[j] += flip
+        carried[j] = sign if sign != 0 else carried[j]
+
+
+@njit(cache=True, error_model="numpy")
+def _interval(
+    n, m, first, y0s, y1s, f0s, f1s, h, last, horizon, kinds, levels, at_grid, at_index,
+    at_s, end_grid, end_index, end_s, side, found, hit, best, best_time, out, counting,
+    count_grid, count_index, count_s, count_slot, counted,
+):  # fmt: skip
+    """Read-offs on the interval [n-1, n]: crossings, interior extrema, off-grid values."""
+    for q in range(kinds.size):
+        kind = kinds[q]
+        if kind == TIME_TO and n <= last + 1:
+            level = levels[q]
+            anything = False
+            for j in range(m):  # vectorised test; the bisection below is rare
+                y1 = y1s[j]
+                crossed = (
+                    (not found[q, j]) and math.isfinite(y1) and _sign(y1 - level) != side[q, j]
+                )
+                hit[j] = crossed
+                anything = anything or crossed
+            if anything:
+                for j in range(m):
+                    if hit[j]:
+                        found[q, j] = True
+                        fraction = _crossing(
+                            y0s[j], y1s[j], f0s[j] * h, f1s[j] * h, level, side[q, j]
+                        )
+                        out[q, j] = (float(n - 1) + fraction) * h
+        elif kind == VALUE:
+            if at_grid[q] < 0 and at_index[q] == n - 1:
+                for j in range(m):
+                    out[q, j] = hermite(y0s[j], y1s[j], f0s[j] * h, f1s[j] * h, at_s[q])
+        elif kind >= PEAK:
+            largest = kind == PEAK
+            if n <= last:
+                for j in range(m):
+                    _interior_extrema(
+                        q, j, y0s[j], y1s[j], f0s[j] * h, f1s[j] * h, float(n - 1), h, largest,
+                        best, best_time,
+                    )  # fmt: skip
+            if end_grid < 0 and end_index == n - 1:
+                for j in range(m):
+                    value = hermite(y0s[j], y1s[j], f0s[j] * h, f1s[j] * h, end_s)
+                    if _better(value, horizon, best[q, j], best_time[q, j], largest):
+                        best[q, j] = value
+                        best_time[q, j] = horizon
+    if counting:
+        for c in range(count_grid.size):
+            if count_grid[c] < 0 and count_index[c] == n - 1:
+                for j in range(m):
+                    slot = count_slot[first + j]
+                    if slot >= 0:
+                        d0, d1 = f0s[j] * h, f1s[j] * h
+                        counted[c, slot] = hermite(y0s[j], y1s[j], d0, d1, count_s[c])
+
+
+@njit(cache=True, error_model="numpy")
+def _interior_extrema(q, j, y0, y1, d0, d1, start, h, largest, best, best_time):
+    """Candidates at the critical points of the cubic inside the step (y0 where outside)."""
+    a, b, c = derivative_coefficients(y0, y1, d0, d1)
+    disc = b * b - 4 * a * c
+    root = math.sqrt(disc) if disc >= 0 else math.nan
+    quadratic = abs(a) > QUADRATIC_FLOOR
+    for k in range(2):
+        if quadratic:
+            sk = (-b + root) / (2 * a) if k == 0 else (-b - root) / (2 * a)
+        else:
+            sk = -c / b if k == 0 else math.nan
+        inside = sk > 0 and sk < 1
+        if not inside:
+            sk = 0.0
+        value = hermite(y0, y1, d0, d1, sk) if inside else y0
+        if _better(value, (start + sk) * h, best[q, j], best_time[q, j], largest):
+            best[q, j] = value
+            best_time[q, j] = (start + sk) * h
+
+
+@njit(cache=True, error_model="numpy")
+def _grid_point(
+    n, m, first, y, horizon, kinds, at_grid, end_grid, best, best_time, out, counting,
+    count_grid, count_slot, counted,
+):  # fmt: skip
+    """Read-offs that fall on grid point n: values on the grid and the end of the run."""
+    for q in range(kinds.size):
+        if kinds[q] == VALUE and at_grid[q] == n:
+            for j in range(m):
+                out[q, j] = y[j]
+        elif kinds[q] >= PEAK and end_grid == n:
+            for j in range(m):
+                if _better(y[j], horizon, best[q, j], best_time[q, j], kinds[q] == PEAK):
+                    best[q, j] = y[j]
+                    best_time[q, j] = horizon
+    if counting:
+        for c in range(count_grid.size):
+            if count_grid[c] == n:
+                for j in range(m):
+                    slot = count_slot[first + j]
+                    if slot >= 0:
+                        counted[c, slot] = y[j]
+
+
+@njit(cache=True, error_model="numpy")
+def _finish(
+    first, m, horizon, kinds, side, found, best, best_time, out, values, times, n0, finite_all
+):  # fmt: skip
+    """Quantities of the block once the run is over (the rules of the trajectory path)."""
+    for j in range(m):
+        s = first + j
+        for q in range(kinds.size):
+            kind = kinds[q]
+            values[q, s] = math.nan
+            times[q, s] = math.nan
+            if kind == VALUE:
+                values[q, s] = out[q, j]
+            elif kind == TIME_TO:
+                if side[q, j] == 0.0:
+                    result = 0.0
+                elif not found[q, j]:
+                    result = math.nan
+                else:
+                    result = out[q, j]
+                if not math.isfinite(n0[s]) or result > horizon * (1 + GRID_TOLERANCE):
+                    result = math.nan
+                values[q, s] = result
+            elif finite_all[j]:
+                values[q, s] = best[q, j]
+                if best[q, j] == best[q, j]:
+                    times[q, s] = best_time[q, j]
+
+
+def _stream(
+    advance_block, slope_block, p, n0, lo, hi, factors, steps, n_steps, lasts, tails,
+    horizon, kinds, levels, at_grid, at_index, at_s, end_grid, end_index, end_s,
+    equilibria, records, record_slot, count_level, count_grid, count_index, count_s,
+    count_slot, values, times, features, kept, counted,
+):  # fmt: skip
+    """Step members lo..hi-1 at every level and fill the output arrays (see the wrapper)."""
+    for first in range(lo, hi, BLOCK):
+        m = min(BLOCK, hi - first)
+        for lv in range(steps.size):
+            step_level(
+                advance_block, slope_block, p, n0, first, m, factors, steps[lv], n_steps[lv],
+                lasts[lv], tails[lv], horizon, kinds, levels, at_grid[lv], at_index[lv],
+                at_s[lv], end_grid[lv], end_index[lv], end_s[lv], equilibria, records[lv],
+                record_slot, lv == count_level, count_grid, count_index, count_s, count_slot,
+                values[lv], times[lv], features[lv], kept[lv], counted,
+            )  # fmt: skip
+
+
+with warnings.catch_warnings():
+    # The law's compiled functions are passed in as arguments (what keeps this loop compiled
+    # once for every law); numba labels that feature experimental. The tests hold the
+    # results to the numpy path.
+    warnings.simplefilter("ignore", NumbaExperimentalFeatureWarning)
+    stream = njit(STREAM, cache=True, error_model="numpy", nogil=True)(_stream)
