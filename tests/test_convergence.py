@@ -11,13 +11,8 @@ import warnings
 import numpy as np
 import pytest
 
-from errbudget.estimates.convergence import (
-    GridConvergence,
-    behaviour_of,
-    grid_convergence,
-    observed_order,
-    richardson,
-)
+from errbudget.estimates.convergence import GridConvergence, grid_convergence
+from errbudget.estimates.richardson import behaviour_of, observed_order, richardson
 
 # Celik et al. (2008), "Procedure for estimation and reporting of uncertainty due to
 # discretization in CFD applications", J. Fluids Eng. 130(7):078001, Table 1, column 1.

@@ -15,8 +15,8 @@ import numpy as np
 from errbudget.budget import combine
 from errbudget.budget.search import Judged, Recommendation
 from errbudget.case.load import Case
-from errbudget.estimates.convergence import richardson
 from errbudget.estimates.ladder import RATIO, Ladder
+from errbudget.estimates.richardson import richardson
 from errbudget.solve.ensemble import n_steps_for
 from errbudget.solve.tableaux import Scheme
 from errbudget.version import package_version

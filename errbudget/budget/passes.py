@@ -18,8 +18,8 @@ import numpy as np
 
 from errbudget.case.load import Case
 from errbudget.estimates import artefacts
-from errbudget.estimates.convergence import richardson
 from errbudget.estimates.ladder import RATIO
+from errbudget.estimates.richardson import richardson
 from errbudget.laws.models import stable_equilibria
 from errbudget.solve.stream import Level, Readout, stream
 from errbudget.solve.trajectory import last_index, tail_start

@@ -33,9 +33,13 @@ from typing import NamedTuple
 import numpy as np
 from scipy.optimize import brentq
 
-# Differences within this many machine epsilons of max|phi| are round-off, not
-# discretisation error (common practice, no source).
-ROUNDOFF_FACTOR = 64.0
+from errbudget.estimates.richardson import (
+    MAX_EXPONENT,
+    MIN_RATIO_EXCESS,
+    ROUNDOFF_FACTOR,
+    richardson,
+)
+
 # Roache's (1994, 1998) safety factors: with a trusted observed order from three or more
 # levels, and otherwise (two levels, formal order assumed, or doubtful observed order).
 SAFETY_TRUSTED = 1.25
@@ -52,11 +56,6 @@ ORDER_TOLERANCE = 1e-12
 MAX_ITERATIONS = 200
 # Smallest order tried by the bracketing solve; below it the order is numerically zero.
 ORDER_FLOOR = 1e-12
-# Refinement ratios closer to 1 than this are duplicate steps: they carry no information.
-MIN_RATIO_EXCESS = 1e-9
-# exp() of more than this overflows double precision; r**p - 1 is capped there, which
-# changes a correction of relative size 1e-304 at most.
-MAX_EXPONENT = 700.0
 
 BEHAVIOURS = ("monotone", "oscillatory", "divergent", "exact")
 
@@ -399,7 +398,7 @@ def _richardson_gci(phi1, phi2, phi3, r21, r32, p, fs) -> _Estimate:
     e21, e32 = phi2 - phi1, phi3 - phi2
     approx_rel = abs(e21 / phi1) if phi1 != 0.0 else None
     denom21 = _expm1_capped(p * math.log(r21))  # r21^p - 1
-    extrapolated = phi1 + (phi1 - phi2) / denom21  # = (r21^p phi1 - phi2)/(r21^p - 1)
+    extrapolated = float(richardson(phi1, phi2, r21, p))  # (r21^p phi1 - phi2)/(r21^p - 1)
     ext_rel = abs((extrapolated - phi1) / extrapolated) if extrapolated != 0.0 else None
     gci_rel = fs * approx_rel / denom21 if approx_rel is not None else None
     ratio = _asymptotic_ratio(phi1, phi2, e21, e32, r21, r32, p)
@@ -447,118 +446,3 @@ def _asymptotic_ratio(phi1, phi2, e21, e32, r21, r32, p) -> float | None:
         + _log_expm1(p * a)
     )
     return math.exp(log_value) if log_value < MAX_EXPONENT else None
-
-
-# ----------------------------------------------------------------------------- ensembles
-
-
-def _roundoff_mask(difference: np.ndarray, scale: np.ndarray) -> np.ndarray:
-    return np.abs(difference) <= ROUNDOFF_FACTOR * np.finfo(float).eps * scale
-
-
-def _ensemble(coarse, medium, fine):
-    c, m, f = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (coarse, medium, fine)))
-    with np.errstate(invalid="ignore"):
-        scale = np.maximum(np.maximum(np.abs(c), np.abs(m)), np.abs(f))
-    return c, m, f, scale
-
-
-def observed_order(coarse, medium, fine, ratio) -> tuple[np.ndarray, np.ndarray]:
-    """Observed order of every ensemble member for a constant refinement ratio.
-
-    p = ln(|coarse - medium| / |medium - fine|) / ln r  (Roache 1998; Celik et al. 2008,
-    eq. 3a with q = 0, which is exact for a constant ratio).
-
-    Parameters
-    ----------
-    coarse, medium, fine : array_like, shape (S,)
-        The quantity on steps r^2 h, r h and h [unit of the quantity].
-    ratio : float
-        Constant refinement ratio r > 1 [-].
-
-    Returns
-    -------
-    order : ndarray of float, shape (S,)
-        The order where ``valid``, 0.0 elsewhere (never NaN) [-].
-    valid : ndarray of bool, shape (S,)
-        True where the values are finite, both differences exceed round-off and the
-        differences shrink (p > 0, i.e. monotone or oscillatory convergence): exactly the
-        members for which :func:`grid_convergence` reports an observed order.
-    """
-    ratio = float(ratio)
-    if not ratio > 1.0 + MIN_RATIO_EXCESS:
-        raise ValueError(f"ratio must be greater than 1, got {ratio!r}")
-    c, m, f, scale = _ensemble(coarse, medium, fine)
-    coarse_diff, fine_diff = c - m, m - f
-    usable = np.isfinite(coarse_diff) & np.isfinite(fine_diff)
-    usable &= ~_roundoff_mask(coarse_diff, scale) & ~_roundoff_mask(fine_diff, scale)
-    safe_coarse = np.where(usable, np.abs(coarse_diff), 1.0)
-    safe_fine = np.where(usable, np.abs(fine_diff), 1.0)
-    order = np.log(safe_coarse / safe_fine) / math.log(ratio)
-    valid = usable & (order > 0.0)
-    return np.where(valid, order, 0.0), valid
-
-
-def richardson(fine, coarse, ratio, order) -> np.ndarray:
-    """Richardson extrapolation of every ensemble member.
-
-    phi_ext = fine + (fine - coarse) / (r^p - 1)  (Richardson 1911, Phil. Trans. R. Soc. A
-    210:307, doi:10.1098/rsta.1911.0009; Celik et al. 2008, eq. 4a).
-
-    Parameters
-    ----------
-    fine, coarse : array_like, shape (S,)
-        The quantity on steps h and r h [unit of the quantity].
-    ratio : float or array_like, shape (S,)
-        Refinement ratio r > 1 [-].
-    order : float or array_like, shape (S,)
-        Order p > 0 (observed or formal) [-]. Where :func:`observed_order` is not valid,
-        pass a fallback, e.g. ``np.where(valid, order, formal_order)``.
-
-    Returns
-    -------
-    ndarray of float, shape (S,)
-        Extrapolated values [unit of the quantity].
-    """
-    f, c = np.asarray(fine, dtype=float), np.asarray(coarse, dtype=float)
-    r, p = np.asarray(ratio, dtype=float), np.asarray(order, dtype=float)
-    if not np.all(r > 1.0 + MIN_RATIO_EXCESS):
-        raise ValueError("ratio must be greater than 1 everywhere")
-    if not np.all(np.isfinite(p) & (p > 0.0)):
-        raise ValueError("order must be finite and positive everywhere")
-    return f + (f - c) / np.expm1(np.minimum(p * np.log(r), MAX_EXPONENT))
-
-
-def behaviour_of(coarse, medium, fine, *, ratios=None) -> np.ndarray:
-    """Convergence behaviour of every ensemble member, by the rule of :func:`grid_convergence`.
-
-    With R = (medium - fine)/(coarse - medium) (Stern et al. 2001): "exact" when both
-    differences are round-off (<= 64 eps max|phi|), "oscillatory" for -1 < R < 0,
-    "monotone" for 0 <= R < ln r21/ln r32 (1 for a constant ratio), "divergent" otherwise.
-
-    Parameters
-    ----------
-    coarse, medium, fine : array_like, shape (S,)
-        The quantity on the three steps, coarsest first [unit of the quantity].
-    ratios : (float, float), optional
-        (r21, r32) = (h_medium/h_fine, h_coarse/h_medium) [-]; a constant ratio if omitted.
-
-    Returns
-    -------
-    ndarray of str, shape (S,)
-        "monotone", "oscillatory", "divergent" or "exact"; non-finite members "divergent".
-    """
-    c, m, f, scale = _ensemble(coarse, medium, fine)
-    bound = 1.0 if ratios is None else math.log(ratios[0]) / math.log(ratios[1])
-    e21, e32 = m - f, c - m
-    finite = np.isfinite(e21) & np.isfinite(e32)
-    fine_zero = finite & _roundoff_mask(e21, scale)
-    coarse_zero = finite & _roundoff_mask(e32, scale)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        r = np.where(finite & ~coarse_zero, e21 / np.where(coarse_zero, 1.0, e32), np.inf)
-    r = np.where(fine_zero, 0.0, r)
-    out = np.full(c.shape, "divergent", dtype="<U11")
-    out[(r >= 0.0) & (r < bound)] = "monotone"
-    out[(r < 0.0) & (r > -1.0)] = "oscillatory"
-    out[fine_zero & coarse_zero] = "exact"
-    return out

@@ -14,6 +14,7 @@ import numpy as np
 from errbudget.case.limits import MAX_FINEST_STEPS
 from errbudget.case.load import Case
 from errbudget.estimates.convergence import grid_convergence
+from errbudget.estimates.richardson import ROUNDOFF_FACTOR
 from errbudget.solve.ensemble import n_steps_for, nominal_params
 from errbudget.solve.stream import stream
 from errbudget.solve.tableaux import get_scheme
@@ -24,7 +25,7 @@ MIN_LEVELS = 5  # the case's step and four refinements
 MAX_LEVELS = 12  # h / 2048 at most
 MAX_STEPS = MAX_FINEST_STEPS  # steps of the finest level at most, whatever the case
 ORDER_TOLERANCE = 0.15  # |p_observed - p_formal| / p_formal counted as settled (common practice)
-ROUNDOFF_FLOOR = 1e3 * np.finfo(float).eps  # level differences below this share are round-off
+ROUNDOFF_FLOOR = ROUNDOFF_FACTOR * np.finfo(float).eps  # differences this small are round-off
 
 
 def settled(values: np.ndarray, formal: int) -> bool:
