@@ -26,8 +26,8 @@ def series(case: Case, passed: ReferencePass, errors: np.ndarray) -> dict:
     fine, coarse = passed.series_fine, passed.series_coarse
     with np.errstate(invalid="ignore"):
         gap = np.abs(coarse - fine)
-        band = np.nanpercentile(fine, BAND_PERCENTILES, axis=1)
-        gap_high = np.nanpercentile(gap, 95.0, axis=1)
+        band = _percentile(fine, BAND_PERCENTILES)
+        gap_high = _percentile(gap, 95.0)
     worst = int(np.nanargmax(gap_high)) if np.isfinite(gap_high).any() else 0
     last = last_index(case.horizon, passed.finest_step)
     keep = np.unique(np.linspace(0, last, min(last + 1, NOMINAL_POINTS)).round().astype(int))
@@ -49,6 +49,13 @@ def series(case: Case, passed: ReferencePass, errors: np.ndarray) -> dict:
         "nominal_fine": accurate.kept[:, 0],
         "errors": errors,
     }
+
+
+def _percentile(values: np.ndarray, q) -> np.ndarray:
+    """Percentiles over members (axis 1) ignoring NaN; the fast path when there is none."""
+    if np.isnan(values).any():
+        return np.nanpercentile(values, q, axis=1)
+    return np.percentile(values, q, axis=1)
 
 
 def stability_map(case: Case, sampled: dict, limits: dict, members: np.ndarray) -> dict | None:
