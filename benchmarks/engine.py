@@ -1,10 +1,10 @@
 """Throughput of errbudget's ensemble engine against what practitioners write, in one run.
 
-Run as ``python benchmarks/engine.py`` from the repository root; writes
-``benchmarks/results.md``. Ensemble: logistic law with proportional harvest
-(dN/dt = r N (1 - N/K) - E N), 4 uncertain inputs (r, K, E, N0), a Saltelli design of 1024
-base samples (6144 rows), a one-year horizon, a ladder of steps 7, 4, 2, 1, 1/2, 1/4, 1/8,
-1/16 day. Throughput is member-steps per second over the whole ladder; every ratio is
+Used by ``python benchmarks/run.py``, which writes ``benchmarks/results.md``. Ensemble:
+logistic law with proportional harvest (dN/dt = r N (1 - N/K) - E N), 4 uncertain inputs
+(r, K, E, N0), a Saltelli design of 1024 base samples (6144 rows), a one-year horizon, a
+ladder of steps 7, 4, 2, 1, 1/2, 1/4, 1/8, 1/16 day. Throughput is member-steps per second
+over the whole ladder; every ratio is
 between timings taken in this same run (the machine is shared, so absolute numbers vary).
 """
 
@@ -35,7 +35,6 @@ REPEATS = 3  # best of, against the noise of a shared machine
 IVP_SUBSET = 12  # members timed with solve_ivp, per ladder level; the rest extrapolated
 PYTHON_SUBSET = 6  # members timed with the pure-Python loop, per ladder level
 IVP_RTOL, IVP_ATOL = 1e-8, 1e-6  # [-], [crayfish]: error below the RK4 ladder's coarse levels
-E2E_SAMPLES = (1024, 65536)
 
 CUSTOM_RATE = "r*N*(1 - N/K) - E*N"  # the same law written as a custom expression
 
@@ -172,15 +171,19 @@ def ensemble_rows(case):
 
 
 def compile_cost(case_path: Path) -> tuple[float, float]:
-    """First solve in a fresh process with an empty kernel cache, then with the cache warm."""
+    """First streaming pass in a new process with empty caches (kernels and numba), then warm.
+
+    Cold includes importing numba, generating the law's module, and compiling the law's step
+    and the streaming loop; warm loads both from the caches.
+    """
     code = (
         f"import time, sys; sys.path.insert(0, {str(ROOT)!r})\n"
-        "from errbudget.case.load import load_case; from errbudget import ensemble\n"
+        "from errbudget.case.load import load_case; from errbudget.solve import ensemble, stream\n"
         f"c = load_case({str(case_path)!r}); p = ensemble.nominal_params(c)\n"
-        "t = time.perf_counter(); ensemble.solve(c, p, 7.0); print(time.perf_counter() - t)\n"
+        "t = time.perf_counter(); stream.stream(c, p, [7.0]); print(time.perf_counter() - t)\n"
     )
-    with tempfile.TemporaryDirectory() as cache:
-        env = dict(os.environ, ERRBUDGET_CACHE_DIR=cache)
+    with tempfile.TemporaryDirectory() as cache, tempfile.TemporaryDirectory() as numba_cache:
+        env = dict(os.environ, ERRBUDGET_CACHE_DIR=cache, NUMBA_CACHE_DIR=numba_cache)
         cold, warm = (
             float(
                 subprocess.run(
@@ -196,37 +199,8 @@ def compile_cost(case_path: Path) -> tuple[float, float]:
     return cold, warm
 
 
-def end_to_end(samples: int, out: Path) -> dict:
-    """Wall time and peak memory of ``errbudget run`` on the crayfish demo case."""
-    code = (
-        "import resource, subprocess, sys, time\n"
-        "t = time.perf_counter()\n"
-        "p = subprocess.run(sys.argv[1:], capture_output=True, text=True)\n"
-        "w = time.perf_counter() - t\n"
-        "m = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss\n"
-        "print(p.returncode, w, m); print(p.stderr[-400:], file=sys.stderr)\n"
-    )
-    command = [
-        sys.executable,
-        "-m",
-        "errbudget",
-        "run",
-        "cases/crayfish-pond.toml",
-        "--out",
-        str(out),
-        "--quiet",
-        "--samples",
-        str(samples),
-    ]
-    done = subprocess.run(
-        [sys.executable, "-c", code, *command], capture_output=True, text=True, cwd=ROOT
-    )
-    code_, wall, rss = done.stdout.split()
-    return {"rc": int(code_), "wall": float(wall), "mb": int(rss) / 1024, "err": done.stderr}
-
-
-def main() -> None:
-    header = machine()
+def section() -> list[str]:
+    """The results.md section of this benchmark (engine throughput, compile cost)."""
     with tempfile.TemporaryDirectory() as tmp:
         case_path = Path(tmp) / "bench.toml"
         case_path.write_text(CASE_TEXT)
@@ -243,8 +217,6 @@ def main() -> None:
         n0, r, k, e = (params[x] for x in ("N0", "r", "K", "E"))
         cold, warm = compile_cost(case_path)
         lines = [
-            *header,
-            "",
             f"Ensemble: {rows} rows (Saltelli, {BASE_SAMPLES} base samples, "
             f"4 inputs), horizon {HORIZON:g} day, ladder {', '.join(f'{h:g}' for h in LADDER)}"
             " day.",
@@ -331,20 +303,12 @@ def main() -> None:
                 f"(target >= 4), engine / solve_ivp = {t_ivp / t_engine:.0f} "
                 "(target >= 200)"
             )
-        e2e = [end_to_end(s, Path(tmp) / f"out{s}") for s in E2E_SAMPLES]
-
-    text = [
-        "# Ensemble engine benchmark",
-        "",
-        "Written by `python benchmarks/engine.py`.",
-        "",
-        "## Machine",
-        "",
-        *lines,
-        "## Throughput (best of "
+    return [
+        "## Ensemble engine throughput (best of "
         f"{REPEATS}; b) and c) timed on {IVP_SUBSET} and {PYTHON_SUBSET} members per level "
         f"and scaled to {rows} rows)",
         "",
+        *lines,
         *table,
         "",
         *checks,
@@ -355,26 +319,8 @@ def main() -> None:
         "",
         "## First-run compile cost",
         "",
-        f"- first solve in a new process, empty kernel cache (numba import, code generation,"
-        f" compilation): {cold:.2f} s",
-        f"- same, kernel cache warm: {warm:.2f} s",
+        "- first streaming pass in a new process, empty kernel and numba caches (numba import,"
+        f" code generation, compiling the law's step and the streaming loop): {cold:.2f} s",
+        f"- same, caches warm: {warm:.2f} s",
         "",
-        "## End to end: `errbudget run cases/crayfish-pond.toml` (3 uncertain inputs)",
-        "",
-        "| base samples | exit code | wall [s] | peak RSS [MB] |",
-        "| --- | --- | --- | --- |",
     ]
-    for s, res in zip(E2E_SAMPLES, e2e, strict=True):
-        text.append(f"| {s} | {res['rc']} | {res['wall']:.1f} | {res['mb']:.0f} |")
-    text.append("")
-    for s, res in zip(E2E_SAMPLES, e2e, strict=True):
-        if res["rc"] != 0:
-            text.append(f"- {s} samples: {res['err'].strip().splitlines()[-1]}")
-    text.append("Targets: 1024 samples <= 5 s and <= 400 MB; 65,536 samples <= 60 s.")
-    out = ROOT / "benchmarks" / "results.md"
-    out.write_text("\n".join(text) + "\n")
-    print("\n".join(text))
-
-
-if __name__ == "__main__":
-    main()

@@ -43,6 +43,11 @@ def build_parser() -> argparse.ArgumentParser:
     )
     run.add_argument("--seed", type=_non_negative_int, help="seed of the sampling design")
     run.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    run.add_argument(
+        "--patient",
+        action="store_true",
+        help="run even when the predicted time exceeds [budget] time_limit (with a progress bar)",
+    )
     check = commands.add_parser("check", help="validate cases and print what they resolve to")
     check.add_argument("cases", nargs="+", metavar="CASE", type=Path)
     return parser
@@ -107,23 +112,40 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def _progress(quiet: bool, title: str):
-    if quiet or not sys.stderr.isatty():
-        return None, None
-    from tqdm import tqdm
+    """The progress receiver: a bar on a terminal, a one-line notice of long runs otherwise."""
+    if quiet:
+        return None
+    if sys.stderr.isatty():
+        from errbudget.outputs.bar import Bar
 
-    bar = tqdm(
-        total=8,
-        desc=title[:30],
-        file=sys.stderr,
-        leave=False,
-        bar_format="{desc}: {n_fmt}/{total_fmt} {postfix}",
-    )
+        return Bar(title)
+    return _Notice(title)
 
-    def say(label: str) -> None:
-        bar.set_postfix_str(label)
-        bar.update(1)
 
-    return say, bar
+class _Notice:
+    """Off a terminal (logs, CI): one line on stderr when a run will take a while."""
+
+    LONG = 10.0  # seconds of predicted work worth announcing
+
+    def __init__(self, title: str):
+        self.title = title
+
+    def stage(self, label: str) -> None:
+        return None
+
+    def planned(self, plan) -> None:
+        if plan.seconds > self.LONG:
+            print(
+                f"errbudget: {self.title}: about {plan.seconds:.0f} s of work "
+                f"({plan.member_steps:.3g} member-steps)",
+                file=sys.stderr,
+            )
+
+    def advanced(self, member_steps: int) -> None:
+        return None
+
+    def close(self) -> None:
+        return None
 
 
 def _run_one(case, args) -> None:
@@ -133,21 +155,27 @@ def _run_one(case, args) -> None:
     from errbudget.outputs.tables import ladder_csv, summary_csv
     from errbudget.report import render_html
 
-    say, bar = _progress(args.quiet, case.path.stem)
+    progress = _progress(args.quiet, case.path.stem)
     try:
         with warnings.catch_warnings():
             # numpy's warnings on NaN or overflow are expected here: the run turns them into
             # flags and nulls in budget.json, so they are not shown to the user.
             warnings.simplefilter("ignore", RuntimeWarning)
-            budget = run_case(case, samples=args.samples, seed=args.seed, progress=say)
+            budget = run_case(
+                case,
+                samples=args.samples,
+                seed=args.seed,
+                progress=progress,
+                patient=args.patient,
+            )
     except InputError as error:
         # A problem found while running (counts the observation model cannot describe) that
         # names no file lies in the counts the run read, or else in the case.
         source = str(case.counts.path) if case.counts is not None else str(case.path)
         raise error.located(source) from None
     finally:
-        if bar is not None:
-            bar.close()
+        if progress is not None:
+            progress.close()
     data = budget.to_dict()
     timestamp = datetime.now(UTC).isoformat(timespec="seconds")
     data["run"]["timestamp"] = timestamp

@@ -554,9 +554,9 @@ def _strict_json(text: str):
 
 def _without_clock(data: dict) -> dict:
     """A copy without the clock readings, all kept under ``run``: timestamp, elapsed_seconds,
-    stages (seconds per stage) and cost (measured speeds)."""
+    stages (seconds per stage), prediction and cost (measured speeds)."""
     data = json.loads(json.dumps(data))
-    for key in ("timestamp", "elapsed_seconds", "stages", "cost"):
+    for key in ("timestamp", "elapsed_seconds", "stages", "prediction", "cost"):
         data["run"].pop(key, None)
     return data
 

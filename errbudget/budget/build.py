@@ -64,6 +64,7 @@ class RunFacts:
     elapsed: float
     stages: dict = field(default_factory=dict)
     work: dict = field(default_factory=dict)
+    prediction: dict = field(default_factory=dict)
 
 
 def budget_json(case: Case, scheme: Scheme, evidence: Evidence, flags: list[dict], *, fit,
@@ -270,6 +271,7 @@ def _run(case: Case, evidence: Evidence, run: RunFacts) -> dict:
         ],
         "stages": run.stages,
         "work": run.work,
+        "prediction": run.prediction,
     }
 
 

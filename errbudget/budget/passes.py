@@ -104,6 +104,17 @@ def series_index(case: Case) -> np.ndarray:
     return np.unique(np.linspace(0, last, min(last + 1, SERIES_POINTS)).round().astype(int))
 
 
+def case_level(
+    case: Case, ensemble: Ensemble, progress: Callable[[int], None] | None = None
+) -> Level:
+    """The case's step over every member, with the states the report's series keep."""
+    readout = Readout(keep={case.step: series_index(case)}, keep_members=ensemble.members)
+    return stream(
+        case, ensemble.params, [case.step], levels=ensemble.levels, readout=readout,
+        progress=progress,
+    )[0]  # fmt: skip
+
+
 def reference_pass(
     case: Case,
     ensemble: Ensemble,
@@ -115,8 +126,8 @@ def reference_pass(
 ) -> ReferencePass:
     """Step the case's step and the two reference levels over every member, once each.
 
-    Levels in ``reuse`` (by step) are taken as they are; the case's step is reused when the
-    reference levels are refined, as its results do not depend on them.
+    Levels in ``reuse`` (by step) are taken as they are: the case's step from
+    :func:`case_level`, which does not depend on the reference levels.
     """
     index = series_index(case)
     stride = round(case.step / finest_step)

@@ -14,20 +14,19 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from errbudget.budget import passes, series
+from errbudget.budget import passes, series, work
 from errbudget.budget.build import Evidence, RunFacts, budget_json
 from errbudget.budget.passes import Candidates, Ensemble, ReferencePass
+from errbudget.budget.progress import Progress, as_progress
 from errbudget.budget.search import recommend
 from errbudget.case.load import Case
 from errbudget.errors import InputError
 from errbudget.estimates import artefacts, ladder, roundoff, stability
 from errbudget.estimates.drivers import drivers
 from errbudget.estimates.errors import discretisation_errors
-from errbudget.solve.ensemble import ensemble_params, n_steps_for
+from errbudget.solve.ensemble import ensemble_params
 from errbudget.solve.tableaux import get_scheme
 from errbudget.uncertainty.spread import sample_design, sobol_indices, spread_summary
-
-REFERENCE_DEPTH = 8  # reference step = predicted adequate step / this (candidate, half, margin)
 
 
 @dataclass
@@ -46,10 +45,10 @@ class Budget:
 
 
 class _Clock:
-    """Wall time of each stage of the run, and the progress callback's labels."""
+    """Wall time of each stage of the run; announces each stage to the progress receiver."""
 
-    def __init__(self, say: Callable[[str], None]):
-        self.say = say
+    def __init__(self, progress: Progress):
+        self.progress = progress
         self.stages: dict[str, float] = {}
         self.started = self.last = time.perf_counter()
         self.current: str | None = None
@@ -60,7 +59,7 @@ class _Clock:
             self.stages[self.current] = self.stages.get(self.current, 0.0) + now - self.last
         self.current, self.last = name, now
         if label:
-            self.say(label)
+            self.progress.stage(label)
 
     def elapsed(self) -> float:
         self.stage("done")
@@ -72,8 +71,9 @@ def run_case(
     *,
     samples: int | None = None,
     seed: int | None = None,
-    progress: Callable[[str], None] | None = None,
+    progress: Progress | Callable[[str], None] | None = None,
     fit=None,
+    patient: bool = False,
 ) -> Budget:
     """Compute the error budget of a case.
 
@@ -85,16 +85,21 @@ def run_case(
         Base sample size of the Sobol design (overrides ``[budget] samples``).
     seed : int, optional
         Seed of the design (overrides ``[budget] seed``).
-    progress : callable, optional
-        Called with a short label as each stage starts.
+    progress : Progress or callable, optional
+        Told each stage as it starts (a callable gets the stage's label), the predicted
+        work and the work done (see :mod:`errbudget.budget.progress`).
     fit : object, optional
         A result of :func:`errbudget.uncertainty.calibrate.fit_from_counts` already computed.
+    patient : bool
+        Run even when the predicted time exceeds ``[budget] time_limit`` (otherwise an
+        :class:`~errbudget.errors.InputError` says what to lower).
 
     Returns
     -------
     Budget
     """
-    clock = _Clock(progress or (lambda label: None))
+    receiver = as_progress(progress)
+    clock = _Clock(receiver)
     n_base = samples if samples is not None else case.budget.samples
     seed = seed if seed is not None else case.budget.seed
     scheme = get_scheme(case.scheme)
@@ -124,25 +129,26 @@ def run_case(
     count_times = fit.counts.times if fit is not None else None
     ensemble = passes.ensemble_for(case, ensemble_params(case, sampled), iid, count_times)
 
-    clock.stage(
-        "reference pass",
-        f"ensemble at the case's step and the reference levels ({rows} parameter sets)",
-    )
-    passed = passes.reference_pass(case, ensemble, scheme.order, chosen.steps[-2], chosen.steps[-1])
+    clock.stage("case step", f"the case's step over {rows} parameter sets")
+    coarse = passes.case_level(case, ensemble, receiver.advanced)
+    speed = coarse.member_steps / max(coarse.seconds, 1e-9)
+    plan = work.predict(case, chosen, coarse.values, iid, scheme.order, speed)
+    work.check(case, plan, rows, patient)
+    receiver.planned(plan)
+
+    clock.stage("reference pass", "the reference levels")
+    passed = passes.reference_pass(
+        case, ensemble, scheme.order, chosen.steps[-2], chosen.steps[-1],
+        reuse={case.step: coarse}, progress=receiver.advanced,
+    )  # fmt: skip
     errors = discretisation_errors(case, passed.case_values, passed.reference)
-    deeper = _deeper_reference(
-        case, errors, passed.reference, iid, scheme.order, passed.finest_step, rows, flags
-    )
+    deeper = _deeper_reference(case, errors, passed.reference, iid, scheme.order, passed, flags)
     if deeper is not None:
-        clock.say("refining the reference for a fine step")
+        clock.stage("reference pass", "refining the reference for a fine step")
         passed = passes.reference_pass(
-            case,
-            ensemble,
-            scheme.order,
-            2 * deeper,
-            deeper,
-            reuse={case.step: passed.levels[case.step]},
-        )
+            case, ensemble, scheme.order, 2 * deeper, deeper, reuse={case.step: coarse},
+            progress=receiver.advanced,
+        )  # fmt: skip
         errors = discretisation_errors(case, passed.case_values, passed.reference)
     where = f"at the case's step of {case.step:g} {case.time_unit}"
     flags.extend(artefacts.flags(passed.masks, where))
@@ -157,7 +163,7 @@ def run_case(
     limits = _limits(case, scheme, ensemble)
 
     clock.stage("search", "searching for the coarsest adequate step")
-    candidates = Candidates(case, ensemble, passed)
+    candidates = Candidates(case, ensemble, passed, receiver.advanced)
     recommendation = recommend(
         case, candidates, passed.reference, spreads=spreads, limits=limits, scale=passed.scale
     )
@@ -190,7 +196,11 @@ def run_case(
         reference_steps=(passed.finer_step, passed.finest_step),
         elapsed=clock.elapsed(),
         stages=clock.stages,
-        work={"member_steps": int(sum(lv.member_steps for lv in candidates.levels.values()))},
+        prediction=plan.timing(),
+        work={
+            **plan.to_dict(),
+            "member_steps": int(sum(lv.member_steps for lv in candidates.levels.values())),
+        },
     )
     data = budget_json(
         case, scheme, evidence, flags, fit=fit, run=facts, better_data=better, validation=validation
@@ -341,47 +351,31 @@ def _better_statement(case: Case, now: float | None, better) -> str:
 
 
 def _deeper_reference(
-    case: Case, errors, reference, iid, order: int, finest: float, rows: int, flags: list[dict]
+    case: Case, errors, reference, iid, order: int, passed: ReferencePass, flags: list[dict]
 ) -> float | None:
     """A finer reference step when the adequate step is likely below the ladder's reach.
 
-    The adequate step is predicted from the case-step error, e(h) ~ e(h0) (h/h0)^p; the
-    reference must be REFERENCE_DEPTH times finer so that the candidate and its half are both
-    well resolved. Returns None when the ladder already reaches that far.
+    The adequate step is predicted from the ensemble's error at the case's step,
+    e(h) = e(h0) (h/h0)^p, with the rule of :func:`errbudget.budget.work.deeper_step`.
     """
-    needed = math.inf
+    percentiles, sds = [], []
     for q in range(errors.shape[0]):
-        finite = np.isfinite(errors[q])
-        if not finite.all():
-            continue
-        error = float(np.percentile(errors[q], case.budget.percentile))
+        finite = np.isfinite(errors[q]).all()
+        pct = float(np.percentile(errors[q], case.budget.percentile)) if finite else math.inf
         values = reference[q, iid]
         values = values[np.isfinite(values)]
-        sd = float(np.std(values, ddof=1)) if values.size > 1 else 0.0
-        if error > 0 and sd > 0:
-            ratio = case.budget.fraction * sd / error
-            needed = min(needed, case.step * ratio ** (1.0 / order))
-    if not math.isfinite(needed):
-        return None
-    target = needed / REFERENCE_DEPTH
-    levels = max(0, math.ceil(math.log2(case.step / target)))
-    step = case.step / ladder.RATIO**levels
-    if step >= finest * (1 - 1e-12):
-        return None
-    while step < finest and (
-        n_steps_for(case.horizon, step) > ladder.MAX_STEPS
-        or estimate_memory_mb(case, rows, step) > case.budget.memory_limit_mb
-    ):
-        step *= ladder.RATIO
-    if step >= finest * (1 - 1e-12):
+        percentiles.append(pct)
+        sds.append(float(np.std(values, ddof=1)) if values.size > 1 else 0.0)
+    needed = work.adequate_step(case, np.array(percentiles), np.array(sds), order)
+    step, capped = work.deeper_step(case, needed, passed.finest_step)
+    if capped:
         flags.append(
             {
                 "code": "reference-capped",
                 "message": (
-                    "the adequate step looks finer than the reference levels that the step and "
-                    "memory caps allow; the recommendation may not reach it"
+                    "the adequate step looks finer than the reference levels that the step "
+                    "cap allows; the recommendation may not reach it"
                 ),
             }
         )
-        return None
     return step

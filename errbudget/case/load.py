@@ -35,12 +35,21 @@ TOP_KEYS = ("title", "model", "parameters", "simulation", "quantity", "budget", 
 MODEL_KEYS = ("form", "unit", "rate")
 SIMULATION_KEYS = ("scheme", "step", "horizon")
 QUANTITY_KEYS = ("name", "kind", "at", "level")
-BUDGET_KEYS = ("fraction", "samples", "seed", "percentile", "level", "memory_limit")
+BUDGET_KEYS = (
+    "fraction",
+    "samples",
+    "seed",
+    "percentile",
+    "level",
+    "memory_limit",
+    "time_limit",
+)
 COUNTS_KEYS = ("file", "time", "time_unit", "count", "error", "fit", "start")
 ERROR_MODELS = ("poisson", "negative-binomial", "lognormal", "normal")
 MAX_CASE_BYTES = 1_000_000  # a case file is a few kilobytes; refuse anything absurd
 MIN_SAMPLES = 16  # smallest Sobol base sample (see spread.MIN_BASE_SAMPLES)
 DEFAULT_MEMORY_LIMIT_MB = 4096  # resource ceiling for one run, overridable per case
+DEFAULT_TIME_LIMIT_S = 60.0  # a run predicted to take longer is refused unless asked for
 
 
 @dataclass(frozen=True)
@@ -51,6 +60,7 @@ class BudgetSpec:
     percentile: float = 95.0
     level: float = 0.9
     memory_limit_mb: float = DEFAULT_MEMORY_LIMIT_MB
+    time_limit_s: float = DEFAULT_TIME_LIMIT_S
 
 
 @dataclass(frozen=True)
@@ -373,7 +383,27 @@ def _budget_values(reader, table) -> BudgetSpec:
                 accepted="; accepted: megabytes, e.g. 2048",
             )
         ),
+        time_limit_s=_time_limit(reader, table, defaults.time_limit_s),
     )
+
+
+def _time_limit(reader, table, default: float) -> float:
+    """``[budget] time_limit``: a time such as "90 s" or "5 min", or a number of seconds."""
+    if "time_limit" not in table or not isinstance(table["time_limit"], str):
+        return float(
+            reader.number(
+                table,
+                "time_limit",
+                "budget",
+                default,
+                low=0,
+                accepted='; accepted: a time such as "90 s" or "5 min", or seconds',
+            )
+        )
+    seconds = reader.quantity(table["time_limit"], "budget.time_limit", ureg.second, "a time")
+    if not seconds > 0:
+        raise reader.fail("the time limit must be positive", "budget.time_limit")
+    return seconds
 
 
 def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:

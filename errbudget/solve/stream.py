@@ -35,7 +35,8 @@ from errbudget.solve.trajectory import features as trajectory_features
 
 KINDS = {"value": 0, "time-to": 1, "peak": 2, "minimum": 3}
 N_FEATURES = 6  # finite, largest, smallest, scale, turns, late turns; then two per level
-CHUNK_MEMBERS = 1 << 16  # members per kernel call: progress is reported between calls
+CHUNK_MEMBERS = 1 << 16  # members per kernel call at most
+PROGRESS_WORK = 50_000_000  # member-steps per kernel call when progress is reported
 
 
 @dataclass(frozen=True)
@@ -122,7 +123,7 @@ def stream(
     threads : int, optional
         Threads sharing the members (the results do not depend on it).
     progress : callable, optional
-        Called with the member-steps done after each chunk of members.
+        Called with the member-steps of each chunk of members as it is done.
 
     Returns
     -------
@@ -145,13 +146,15 @@ def stream(
         stream_body.stream(*law, offset + lo, offset + hi, factors, *plan.arguments)
 
     started = time.perf_counter()
-    done = 0
-    for offset in range(0, plan.size, CHUNK_MEMBERS):
-        size = min(plan.size - offset, CHUNK_MEMBERS)
+    per_member = max(int(plan.n_steps.sum()), 1)
+    chunk = CHUNK_MEMBERS
+    if progress is not None:  # chunks of about PROGRESS_WORK member-steps, whole blocks
+        chunk = min(chunk, max(stream_body.BLOCK * engine.THREADS, PROGRESS_WORK // per_member))
+    for offset in range(0, plan.size, chunk):
+        size = min(plan.size - offset, chunk)
         engine.run_threaded(run, size, threads, offset)
-        done += size * int(plan.n_steps.sum())
         if progress is not None:
-            progress(done)
+            progress(size * per_member)
     seconds = time.perf_counter() - started
     return plan.results(seconds)
 

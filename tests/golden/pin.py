@@ -21,6 +21,7 @@ VOLATILE = {
     ("run", "chunk_rows"),
     ("run", "stages"),
     ("run", "work"),
+    ("run", "prediction"),
     ("case", "path"),
     ("fit", "counts_file"),
 }
