@@ -13,7 +13,7 @@ import numpy as np
 
 from errbudget.case.limits import MAX_FINEST_STEPS
 from errbudget.case.load import Case
-from errbudget.estimates.convergence import grid_convergence
+from errbudget.estimates.convergence import FORMAL_ORDER_TOLERANCE, grid_convergence
 from errbudget.estimates.richardson import ROUNDOFF_FACTOR
 from errbudget.solve.ensemble import n_steps_for, nominal_params
 from errbudget.solve.stream import stream
@@ -24,7 +24,7 @@ RATIO = 2  # constant refinement ratio of the ladder
 MIN_LEVELS = 5  # the case's step and four refinements
 MAX_LEVELS = 12  # h / 2048 at most
 MAX_STEPS = MAX_FINEST_STEPS  # steps of the finest level at most, whatever the case
-ORDER_TOLERANCE = 0.15  # |p_observed - p_formal| / p_formal counted as settled (common practice)
+ORDER_TOLERANCE = FORMAL_ORDER_TOLERANCE  # one tolerance: settled and trusted alike
 ROUNDOFF_FLOOR = ROUNDOFF_FACTOR * np.finfo(float).eps  # differences this small are round-off
 
 
