@@ -76,30 +76,30 @@ def test_period_two_for_rh_above_two(fine):
     assert not masks["divergence"].any() and not masks["negative"].any()
 
 
-def test_rh_beyond_three_leaves_the_bounds_and_diverges():
-    # May 1976: for mu > 4 (r h > 3) the map leaves [0, 1]; a negative x then runs away to
-    # minus infinity. From N0 = 2K with r h = 5 the first step already lands at -8K.
+def test_rh_beyond_three_leaves_the_bounds_and_is_absorbed_at_zero():
+    # May 1976: for mu > 4 (r h > 3) the map leaves [0, 1]; a step below zero would then run
+    # away to minus infinity, but zero is absorbing: the population is cleared and stays at
+    # zero, which the accurate solution never does. From N0 = 2K with r h = 5 the first step
+    # already lands at -8K.
     masks = _euler_masks([3.2, 5.0], n0=[START, 2 * CAPACITY], n_steps=60)
-    assert masks["divergence"].all()
-    for code in ("negative", "overshoot", "oscillation", "sustained"):
-        assert not masks[code].any(), code
+    assert masks["negative"].all()
+    assert not masks["divergence"].any()
     found = flags(masks, "at the case's step")
-    assert [f["code"] for f in found] == ["divergence"]
+    assert "negative" in [f["code"] for f in found]
     json.dumps(found, allow_nan=False)  # no NaN or infinity reaches the budget
-    assert found[0]["count"] == 2 and found[0]["share"] == 1.0
+    negative = next(f for f in found if f["code"] == "negative")
+    assert negative["count"] == 2 and negative["share"] == 1.0
 
 
-def test_negative_without_runaway():
-    # From N0 = 2K with r h = 1.2 Euler jumps to -0.4 K, then -1.07 K, -3.7 K, -25 K: below
-    # zero but not yet beyond 1000 times the accurate scale over 4 steps. The exact solution
-    # decreases to K and stays positive (Verhulst 1838).
-    masks = _euler_masks([1.2, 0.5], n0=[2 * CAPACITY, 2 * CAPACITY], n_steps=4)
-    np.testing.assert_array_equal(masks["negative"], [True, False])
-    np.testing.assert_array_equal(masks["divergence"], [False, False])
-    np.testing.assert_array_equal(masks["overshoot"], [True, False])
-    # Over 6 steps the same member passes -8e5 K: runaway, reported as divergence only.
-    masks = _euler_masks([1.2], n0=[2 * CAPACITY], n_steps=6)
-    assert masks["divergence"][0] and not masks["negative"][0]
+def test_a_step_below_zero_is_absorbed_and_flagged():
+    # From N0 = 2K with r h = 1.2 Euler would jump to -0.4 K; it stops at zero and stays
+    # there, so no runaway follows however long the run. The exact solution decreases to K
+    # and stays positive (Verhulst 1838).
+    for n_steps in (4, 60):
+        masks = _euler_masks([1.2, 0.5], n0=[2 * CAPACITY, 2 * CAPACITY], n_steps=n_steps)
+        np.testing.assert_array_equal(masks["negative"], [True, False])
+        np.testing.assert_array_equal(masks["divergence"], [False, False])
+        np.testing.assert_array_equal(masks["overshoot"], [True, False])
 
 
 def test_feature_shared_by_the_accurate_solution_is_not_an_artefact():

@@ -154,7 +154,7 @@ CASE_EDITS = {
         'level = "6000 crayfish"',
         'level = "-6000 crayfish"',
         "quantity[2].level",
-        ("the level must be positive",),
+        ("the level cannot be negative",),
     ),
     "memory-limit-zero": (
         BUILTIN,
@@ -180,9 +180,9 @@ CASE_EDITS = {
     "step-too-small-for-the-ladder": (
         BUILTIN,
         'step = "7 day"',
-        'step = "0.001 day"',
+        'step = "0.0001 day"',
         "simulation.step",
-        ("steps of 0.001 day; at most", "use a step of at least"),
+        ("steps of 0.0001 day; at most", "use a step of at least"),
     ),
     "step-absurdly-small": (
         BUILTIN,

@@ -108,11 +108,33 @@ seed = 5
 
 def test_divergent_ensemble_gives_clean_json_and_a_flag(tmp_path):
     case = _case(tmp_path, DIVERGENT_CASE)
-    # r h > 3 for part of the ensemble: beyond Euler's stability limit r h < 2 at K, and
-    # the logistic map with mu = 1 + r h > 4 escapes to infinity (May 1976, Nature 261:459).
+    # r h > 3 for part of the ensemble: beyond Euler's stability limit r h < 2 at K, the
+    # logistic map with mu = 1 + r h > 4 leaves [0, 1] (May 1976, Nature 261:459) and the
+    # step below zero is absorbed there: a stock wiped out by the step, not by the law.
     budget = run_case(case, samples=64)
     text = json.dumps(budget.to_dict(), allow_nan=False)
     assert "NaN" not in text and "Infinity" not in text
     codes = [flag["code"] for flag in budget.to_dict()["flags"]]
-    assert "divergence" in codes
+    assert "negative" in codes
     assert budget.adequate is False
+
+
+RUNAWAY_CASE = (
+    DIVERGENT_CASE.replace('form = "logistic"', 'form = "custom"\nrate = "r*N*(1 - N/K)*(1 - N/M)"')
+    .replace('K = "1000 beetle"', 'K = "1000 beetle"\nM = "3000 beetle"')
+    .replace('N0 = "1500 beetle"', 'N0 = "400 beetle"')
+    .replace(
+        'r = { value = "1.2 / day", cv = 0.4, dist = "lognormal" }',
+        'r = { value = "8 / day", cv = 0.3, dist = "lognormal" }',
+    )
+)
+
+
+def test_runaway_past_an_unstable_level_is_divergence(tmp_path):
+    # dN/dt = r N (1 - N/K)(1 - N/M), M = 3K: stable at K, unstable at M, growing without
+    # bound above M. The accurate solution rises to K; a step long enough to jump past M
+    # runs away to infinity, which is flagged as divergence and kept out of the JSON.
+    budget = run_case(_case(tmp_path, RUNAWAY_CASE), samples=64)
+    text = json.dumps(budget.to_dict(), allow_nan=False)
+    assert "NaN" not in text and "Infinity" not in text
+    assert "divergence" in [flag["code"] for flag in budget.to_dict()["flags"]]

@@ -105,7 +105,7 @@ def test_without_parameter_spread_the_reason_says_so(tmp_path):
     case = _no_step_case(tmp_path, r_spread='{ value = "0.2 / day", sd = "0.02 / day" }')
     tried = [Judged(0.5, False, 2.0)]
     reference = np.full((1, 4), 500.0)
-    reason = why_none(case, tried, [{"sd": 0.0}], reference, 1000.0)
+    reason = why_none(case, tried, [0.0], reference, 1000.0)
     assert '"fish on day 20" has no parameter spread' in reason
     assert reason.startswith("no candidate step down to 0.5 day meets the rule")
 
@@ -113,8 +113,8 @@ def test_without_parameter_spread_the_reason_says_so(tmp_path):
 def test_roundoff_first_is_named_as_the_reason(tmp_path):
     case = _no_step_case(tmp_path, r_spread='{ value = "0.2 / day", sd = "0.02 / day" }')
     tried = [Judged(0.5, False, 2.0)]
-    # 80 steps x 2^-53 x 1000 fish = 8.9e-12 fish exceeds 10 % of a spread of 1e-11 fish.
-    reason = why_none(case, tried, [{"sd": 1e-11}], np.full((1, 4), 500.0), 1000.0)
+    # 80 steps x 2^-53 x 1000 fish = 8.9e-12 fish exceeds an allowance of 1e-12 fish.
+    reason = why_none(case, tried, [1e-12], np.full((1, 4), 500.0), 1000.0)
     assert "round-off would dominate" in reason
 
 
@@ -124,5 +124,5 @@ def test_artefacts_everywhere_are_named_as_the_reason(tmp_path):
         Judged(1.0, False, 0.05, artefacts=["oscillation"]),
         Judged(0.5, False, 0.04, artefacts=["negative"]),
     ]
-    reason = why_none(case, tried, [{"sd": 100.0}], np.full((1, 4), 500.0), 1000.0)
+    reason = why_none(case, tried, [10.0], np.full((1, 4), 500.0), 1000.0)
     assert "every candidate shows artefacts (negative, oscillation)" in reason

@@ -663,18 +663,27 @@ def test_better_data_section(counted, report):
     assert "What better data would buy" not in report.html
 
 
+def _shown_number(text: str) -> float:
+    """A number as the report shows it: "180 000" or "1.3 × 10⁶"."""
+    mantissa, _, power = text.partition(" × 10")
+    digits = str.maketrans("⁰¹²³⁴⁵⁶⁷⁸⁹⁻", "0123456789-")
+    exponent = int(power.translate(digits)) if power else 0
+    return float(mantissa.replace(" ", "")) * 10.0**exponent
+
+
 def test_cost_of_the_step(report):
     cost = report.data["run"]["cost"]
     assert cost is not None
     section = re.search(r'<section[^>]*id="cost".*?</section>', report.html, flags=re.S).group(0)
     text = _text(section)
     assert "Clock measurements made on this machine during this run" in text
-    runs = re.search(r"Runs per second\s+([\d. ]+) runs/s\s+([\d. ]+) runs/s", text)
+    number = r"([\d. ]+(?: × 10[⁰¹²³⁴⁵⁶⁷⁸⁹⁻]+)?)"
+    runs = re.search(rf"Runs per second\s+{number} runs/s\s+{number} runs/s", text)
     assert runs, text
-    assert float(runs.group(1).replace(" ", "")) == pytest.approx(
+    assert _shown_number(runs.group(1)) == pytest.approx(
         cost["runs_per_second_at_case_step"], rel=0.05
     )  # two significant digits
-    assert float(runs.group(2).replace(" ", "")) == pytest.approx(
+    assert _shown_number(runs.group(2)) == pytest.approx(
         cost["runs_per_second_at_recommended_step"], rel=0.05
     )
     steps = re.search(r"Steps per run\s+(\d+)\s+(\d+)", text)

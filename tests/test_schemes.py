@@ -111,7 +111,9 @@ def test_stability_function_is_one_step_of_the_linear_test_equation(name):
     scheme = SCHEMES[name]
     lam = np.array([-3.0, -0.4, 0.9])
     step = 0.7
-    states = integrate(lambda t, n, p: p["lam"] * n, np.ones(3), {"lam": lam}, step, 1, scheme)
+    states = integrate(
+        lambda t, n, p: p["lam"] * n, np.ones(3), {"lam": lam}, step, 1, scheme, absorbing=False
+    )
     np.testing.assert_allclose(states[1], scheme.stability(step * lam), rtol=1e-14)
 
 
@@ -184,16 +186,19 @@ def test_time_dependent_rate_uses_stage_times():
     # N' = t has N(t) = t^2/2; a scheme of order >= 2 integrates it exactly (its quadrature
     # b.c = 1/2 is exact for linear integrands; Hairer, Norsett & Wanner 1993, sec. II.1).
     for name in ("heun", "midpoint", "rk4"):
-        out = integrate(lambda t, n, p: t + 0 * n, np.zeros(1), {}, 0.3, 10, SCHEMES[name])
+        out = integrate(
+            lambda t, n, p: t + 0 * n, np.zeros(1), {}, 0.3, 10, SCHEMES[name], absorbing=False
+        )
         np.testing.assert_allclose(
             out[:, 0], (0.3 * np.arange(11)) ** 2 / 2, rtol=1e-13, atol=1e-15
         )
 
 
 def test_overflow_is_returned_not_raised():
-    # Euler on the logistic law from N0 = 2K with r h = 5 leaves the basin and overflows.
+    # Euler on the logistic law from N0 = 2K with r h = 5 leaves the basin: stepped as a
+    # plain ODE it overflows to minus infinity, without an exception.
     model = built_in("logistic")
-    out = integrate(
+    args = (
         model.rate,
         np.array([200.0, 50.0]),
         {"r": np.array([5.0, 0.5]), "K": np.array([100.0, 100.0])},
@@ -201,8 +206,16 @@ def test_overflow_is_returned_not_raised():
         40,
         SCHEMES["euler"],
     )
+    out = integrate(*args, absorbing=False)
     assert not np.isfinite(out[-1, 0])
     assert np.all(np.isfinite(out[:, 1]))
+    # As a population, zero is absorbing: the first step lands at -800 and stops at zero.
+    cleared: dict = {}
+    out = integrate(*args, cleared=cleared)
+    assert out[1, 0] == 0.0 and np.all(out[1:, 0] == 0.0)
+    assert cleared["index"].tolist() == [1, -1]
+    assert cleared["value"][0] == pytest.approx(200.0 + 5.0 * 200.0 * (1 - 2.0))
+    np.testing.assert_array_equal(out[:, 1], integrate(*args, absorbing=False)[:, 1])
 
 
 def test_get_scheme():

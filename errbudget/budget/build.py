@@ -22,7 +22,10 @@ from errbudget.solve.tableaux import Scheme
 from errbudget.version import package_version
 
 SCHEMA = "errbudget.budget/1"
-REFERENCE_NOTE = "Richardson-extrapolated values from the two finest ladder levels"
+REFERENCE_NOTE = (
+    "Richardson-extrapolated values from the two reference levels (the ladder's finest, or "
+    "finer where the adequate step needs them)"
+)
 
 
 @dataclass(frozen=True)
@@ -40,6 +43,12 @@ class Evidence:
     limits : dict -- errbudget.estimates.stability.step_limits (with the nominal limit)
     recommendation : Recommendation
     series : dict -- the report's series (trajectory error along the run)
+    allowances : list of float -- per quantity, the error it may carry (budget.allowance)
+    collapsed : list of bool -- per quantity, the forecast lies below the resolution
+    resolution : float -- the population resolution [population unit]
+    cleared : dict or None -- the share of the ensemble the accurate solution clears
+    nominal_reference : ndarray (Q,) or None -- Richardson extrapolation at nominal values
+        from the two reference levels of the ensemble (the ladder's finest two when None)
     """
 
     ladder: Ladder
@@ -51,6 +60,11 @@ class Evidence:
     limits: dict
     recommendation: Recommendation
     series: dict
+    allowances: list
+    collapsed: list
+    resolution: float
+    cleared: dict | None = None
+    nominal_reference: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -90,6 +104,7 @@ def budget_json(case: Case, scheme: Scheme, evidence: Evidence, flags: list[dict
         },
         "quantities": quantities,
         "verdict": verdict,
+        "clearance": evidence.cleared,
         "flags": flags,
         "fit": fit.to_dict() if fit is not None else None,
         "since_last": None,
@@ -119,7 +134,10 @@ def _quantity(case: Case, scheme: Scheme, evidence: Evidence, q: int) -> dict:
     if np.isfinite(errors).all() and errors.size:
         pct = float(np.percentile(errors, case.budget.percentile))
     nominal = float(column[0])
-    reference = _nominal_reference(column, scheme.order)
+    if evidence.nominal_reference is not None:
+        reference = number(evidence.nominal_reference[q])
+    else:
+        reference = _nominal_reference(column, scheme.order)
     richardson_case = (
         abs(nominal - reference) if reference is not None and math.isfinite(nominal) else None
     )
@@ -129,6 +147,12 @@ def _quantity(case: Case, scheme: Scheme, evidence: Evidence, q: int) -> dict:
     spread = evidence.spreads[q]
     sd = spread["sd"]
     ratio = numerical / sd if numerical is not None and sd else None
+    allowed = evidence.allowances[q]
+    times = None
+    if numerical is not None and allowed > 0:
+        times = numerical / allowed
+    elif numerical == 0:
+        times = 0.0
     return {
         "name": spec.name,
         "kind": spec.kind,
@@ -173,16 +197,35 @@ def _quantity(case: Case, scheme: Scheme, evidence: Evidence, q: int) -> dict:
             "computed_on": REFERENCE_NOTE,
         },
         "numerical_to_parameter": ratio,
-        "allowance": case.budget.fraction * sd if sd else None,
+        "allowance": allowed if allowed > 0 else None,
+        "numerical_to_allowance": times,
+        "resolution": {"value": evidence.resolution, "unit": unit}
+        if spec.kind != "time-to"
+        else None,
+        "collapsed": bool(evidence.collapsed[q]),
         "combined": combine.root_sum_square(numerical, sd),
         "shares": combine.shares(pct, round_error, sd),
-        "adequate": bool(ratio is not None and ratio <= case.budget.fraction),
+        "adequate": bool(times is not None and times <= 1.0),
     }
 
 
 def _quantity_flags(quantities: list[dict], ladder: Ladder) -> list[dict]:
-    """Flags about the quantities themselves: undefined at nominal values, read off the grid."""
+    """Flags about the quantities themselves: collapsed, undefined at nominal values, read off
+    the grid."""
     flags = [
+        {
+            "code": "collapsed",
+            "message": (
+                f'"{item["name"]}" has collapsed: its forecast lies below the resolution of '
+                f"{item['resolution']['value']:.3g} {item['unit']} in nearly the whole "
+                "ensemble, so its numerical error is judged against that resolution, not "
+                "against its (vanishing) spread"
+            ),
+        }
+        for item in quantities
+        if item["collapsed"]
+    ]
+    flags += [
         {
             "code": "undefined-quantity",
             "message": (

@@ -41,14 +41,17 @@ def shares(disc, rounding, sd) -> dict | None:
 
 def verdict(case: Case, quantities: list[dict], artefact_flags: list[dict],
             recommendation: Recommendation) -> dict:  # fmt: skip
-    """The verdict block of budget.json: adequate or not, why, and the recommended step."""
-    fraction = case.budget.fraction
-    ratios = [(q["numerical_to_parameter"], q) for q in quantities]
+    """The verdict block of budget.json: adequate or not, why, and the recommended step.
+
+    ``ratio`` is the binding quantity's numerical error in units of its allowance, the
+    number the sentence states ("... times the allowance").
+    """
+    ratios = [(q["numerical_to_allowance"], q) for q in quantities]
     undefined = [q for r, q in ratios if r is None]
     binding = max(
         (pair for pair in ratios if pair[0] is not None), key=lambda p: p[0], default=(None, None)
     )[1]
-    adequate = not undefined and not artefact_flags and all(r <= fraction for r, _ in ratios)
+    adequate = not undefined and not artefact_flags and all(r <= 1.0 for r, _ in ratios)
     first = _first_sentence(case, undefined, binding, adequate)
     if artefact_flags:
         first += " Artefacts at this step: " + ", ".join(f["code"] for f in artefact_flags) + "."
@@ -60,35 +63,41 @@ def verdict(case: Case, quantities: list[dict], artefact_flags: list[dict],
     )
     return {
         "adequate": bool(adequate),
-        "fraction": fraction,
+        "fraction": case.budget.fraction,
         "recommended_step": {"value": rec, "unit": case.time_unit},
         "binding_quantity": binding["name"] if binding else None,
-        "ratio": binding["numerical_to_parameter"] if binding else None,
+        "ratio": binding["numerical_to_allowance"] if binding else None,
         "reason": f"{first} {rec_text}",
     }
 
 
 def _first_sentence(case: Case, undefined: list[dict], binding: dict | None, adequate) -> str:
     step_text = with_unit(plain_step(case.step), case.step, case.time_unit)
-    fraction = case.budget.fraction
     if undefined:
         return (
             f'At {step_text}, the numerical error of "{undefined[0]["name"]}" cannot be set '
-            "against its parameter spread (the error or the spread is undefined or zero): the "
-            "step cannot be judged adequate."
+            "against an allowance (the error or the spread is undefined, or the allowance "
+            "is zero): the step cannot be judged adequate."
         )
     if binding is None:
         return f"At {step_text}, no quantity could be evaluated."
-    numerical = binding["numerical_to_parameter"] * binding["parameter"]["sd"]
-    times = binding["numerical_to_parameter"] / fraction
+    times = binding["numerical_to_allowance"]
+    numerical = times * binding["allowance"] if binding["allowance"] else 0.0
     if adequate:
         verdict_text = "the step is adequate"
     elif times > 1:
         verdict_text = "the step is too coarse"
     else:
         verdict_text = "but artefacts make the step inadequate"
+    sd = binding["parameter"]["sd"] or 0.0
+    if binding["allowance"] is not None and binding["allowance"] > case.budget.fraction * sd:
+        resolution = binding["resolution"]["value"]
+        floor = with_unit(f"{resolution:.3g}", resolution, binding["unit"])
+        allowance = f"allowance, the resolution of {floor}"
+    else:
+        allowance = f"{case.budget.fraction:.0%} allowance of its parameter spread"
     return (
         f'At {step_text}, the numerical error of "{binding["name"]}" is '
         f"{with_unit(f'{numerical:.3g}', numerical, binding['unit'])}, {times:.2g} times the "
-        f"{fraction:.0%} allowance of its parameter spread: {verdict_text}."
+        f"{allowance}: {verdict_text}."
     )

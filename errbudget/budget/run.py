@@ -14,7 +14,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from errbudget.budget import passes, series, work
+from errbudget.budget import allowance, passes, series, work
 from errbudget.budget.build import Evidence, RunFacts, budget_json
 from errbudget.budget.passes import Candidates, Ensemble, ReferencePass
 from errbudget.budget.progress import Progress, as_progress
@@ -24,7 +24,9 @@ from errbudget.errors import InputError
 from errbudget.estimates import artefacts, ladder, roundoff, stability
 from errbudget.estimates.drivers import drivers
 from errbudget.estimates.errors import discretisation_errors
-from errbudget.solve.ensemble import ensemble_params
+from errbudget.estimates.richardson import richardson
+from errbudget.solve.ensemble import ensemble_params, nominal_params
+from errbudget.solve.stream import stream
 from errbudget.solve.tableaux import get_scheme
 from errbudget.uncertainty.spread import sample_design, sobol_indices, spread_summary
 
@@ -131,8 +133,10 @@ def run_case(
 
     clock.stage("case step", f"the case's step over {rows} parameter sets")
     coarse = passes.case_level(case, ensemble, receiver.advanced)
-    speed = coarse.member_steps / max(coarse.seconds, 1e-9)
-    plan = work.predict(case, chosen, coarse.values, iid, scheme.order, speed)
+    speed = work.speed(case, coarse, ensemble.params)
+    plan = work.predict(
+        case, chosen, coarse.values, iid, scheme.order, speed, float(np.max(coarse.features.scale))
+    )
     work.check(case, plan, rows, patient)
     receiver.planned(plan)
 
@@ -162,10 +166,14 @@ def run_case(
     rounding = roundoff.measure(case, case.step)
     limits = _limits(case, scheme, ensemble)
 
+    floor = allowance.resolution(case, passed.scale)
+    allowed = allowance.allowances(case, [s["sd"] for s in spreads], floor)
+    collapsed = allowance.collapsed(case, spreads, floor)
+
     clock.stage("search", "searching for the coarsest adequate step")
     candidates = Candidates(case, ensemble, passed, receiver.advanced)
     recommendation = recommend(
-        case, candidates, passed.reference, spreads=spreads, limits=limits, scale=passed.scale
+        case, candidates, passed.reference, allowances=allowed, limits=limits, scale=passed.scale
     )
     clock.stage("series", "series for the report")
     report_series = series.series(case, passed, errors)
@@ -179,7 +187,7 @@ def run_case(
     if joint is not None:
         clock.stage("better data", "what better data would buy")
         better = _better_data(
-            case, joint, independent, n_base, seed, passed, limits, recommendation
+            case, joint, independent, n_base, seed, passed, limits, recommendation, floor
         )
     validation = None
     if case.counts is not None and fit is not None:
@@ -187,8 +195,12 @@ def run_case(
         from errbudget.estimates.validation import validate_run
 
         validation = validate_run(case, fit, passed.count_values)
-    evidence = Evidence(chosen, errors, spreads, indices, found_drivers, rounding, limits,
-                        recommendation, report_series)  # fmt: skip
+    evidence = Evidence(
+        chosen, errors, spreads, indices, found_drivers, rounding, limits, recommendation,
+        report_series, allowances=allowed, collapsed=collapsed, resolution=floor,
+        cleared=_cleared(case, passed, iid),
+        nominal_reference=_nominal_reference(case, passed, scheme.order),
+    )  # fmt: skip
     facts = RunFacts(
         samples=n_base,
         seed=seed,
@@ -208,27 +220,65 @@ def run_case(
     return Budget(data, report_series)
 
 
+def _nominal_reference(case: Case, passed: ReferencePass, order: int) -> np.ndarray:
+    """Richardson extrapolation at nominal values from the ensemble's two reference levels."""
+    finer, finest = stream(case, nominal_params(case), [passed.finer_step, passed.finest_step])
+    with np.errstate(all="ignore"):
+        return richardson(finest.values[:, 0], finer.values[:, 0], ladder.RATIO, order)
+
+
+def _cleared(case: Case, passed: ReferencePass, iid) -> dict:
+    """The share of the ensemble that the accurate solution clears (reaches zero) by the
+    horizon: an outcome of the model and its parameters, not an artefact of the step."""
+    finest = passed.finest.features
+    cleared = (finest.finite & (finest.smallest <= 0))[iid]
+    return {
+        "share": float(cleared.mean()) if cleared.size else 0.0,
+        "members": int(cleared.sum()),
+        "of": int(cleared.size),
+        "by": {"value": case.horizon, "unit": case.time_unit},
+        "note": "share of the parameter sets whose accurate solution reaches zero within the "
+        "horizon (independent draws of the design); an outcome of the model, not of the step",
+    }
+
+
 def _ladder_flags(case: Case, chosen: ladder.Ladder, order: int) -> list[dict]:
+    """A flag naming the quantities whose order did not settle, and the cap that stopped it."""
     if not chosen.capped:
         return []
+    unsettled = []
+    for q, spec in enumerate(case.quantities):
+        if not chosen.settled[q]:
+            orders = ", ".join(
+                "undefined" if p is None else f"{p:.3g}"
+                for p in ladder.last_orders(chosen.values[:, q])
+            )
+            unsettled.append(f'"{spec.name}" (last two triplets: {orders})')
+    cap = (
+        f"its cap of {ladder.MAX_LEVELS} levels"
+        if chosen.capped_by == "levels"
+        else f"its cap of {ladder.MAX_STEPS} steps on the finest level"
+    )
     return [
         {
             "code": "ladder-capped",
             "message": (
-                f"the observed order did not settle at the formal order {order} within "
-                f"{len(chosen.steps)} levels (finest step {chosen.steps[-1]:g} "
-                f"{case.time_unit}); the discretisation estimates are less certain"
+                f"the observed order of {', '.join(unsettled)} did not settle within "
+                f"{ladder.ORDER_TOLERANCE:.0%} of the formal order {order} before the ladder "
+                f"reached {cap} (finest step {chosen.steps[-1]:g} {case.time_unit}); the "
+                "discretisation estimates are less certain"
             ),
         }
     ]
 
 
 def _limits(case: Case, scheme, ensemble: Ensemble) -> dict:
-    """Step limits from linear stability, per member, and at the first member."""
+    """Step limits from linear stability, per member, and at the nominal parameters."""
     law = {k: v for k, v in ensemble.params.items() if k != "N0"}
     limits = stability.step_limits(case.model, scheme, law)
-    stable = limits["stable"]
-    limits["stable_nominal"] = stable[0] if stable.size else None
+    nominal = {k: np.array([v]) for k, v in case.nominal().items() if k != "N0"}
+    at_nominal = stability.step_limits(case.model, scheme, nominal)["stable"]
+    limits["stable_nominal"] = float(at_nominal[0]) if at_nominal.size else None
     return limits
 
 
@@ -298,8 +348,9 @@ def with_fitted_nominal(case: Case, fit) -> Case:
 
 
 def _better_data(
-    case: Case, joint, independent, n_base, seed, passed: ReferencePass, limits, recommendation
-) -> dict:
+    case: Case, joint, independent, n_base, seed, passed: ReferencePass, limits, recommendation,
+    floor: float,
+) -> dict:  # fmt: skip
     """The budget again as if the counts were doubled: the fitted covariance halved.
 
     Better data narrow the parameter spread, which shrinks the allowance for numerical
@@ -324,8 +375,9 @@ def _better_data(
         spread_summary(again.reference[q, design.independent_rows], case.budget.level)
         for q in range(len(case.quantities))
     ]
+    allowed = allowance.allowances(case, [s["sd"] for s in spreads], floor)
     better = recommend(
-        case, Candidates(case, ensemble, again), again.reference, spreads=spreads,
+        case, Candidates(case, ensemble, again), again.reference, allowances=allowed,
         limits=limits, scale=again.scale,
     )  # fmt: skip
     return {
@@ -366,7 +418,9 @@ def _deeper_reference(
         values = values[np.isfinite(values)]
         percentiles.append(pct)
         sds.append(float(np.std(values, ddof=1)) if values.size > 1 else 0.0)
-    needed = work.adequate_step(case, np.array(percentiles), np.array(sds), order)
+    floor = allowance.resolution(case, passed.scale)
+    allowed = np.array(allowance.allowances(case, sds, floor))
+    needed = work.adequate_step(case, np.array(percentiles), allowed, order)
     step, capped = work.deeper_step(case, needed, passed.finest_step)
     if capped:
         flags.append(

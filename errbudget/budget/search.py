@@ -86,9 +86,14 @@ def roundoff_bound(case: Case, reference: np.ndarray, q: int, step: float, scale
     return n_steps_for(case.horizon, step) * UNIT_ROUNDOFF[np.float64] * size
 
 
-def judge_step(case: Case, candidates: Candidates, reference, step: float, spreads,
+def judge_step(case: Case, candidates: Candidates, reference, step: float, allowances,
                scale: float) -> Judged:  # fmt: skip
-    """Apply the verdict rule to the ensemble at ``step`` against the reference."""
+    """Apply the verdict rule to the ensemble at ``step`` against the reference.
+
+    ``ratios`` are the numerical errors in units of each quantity's allowance
+    (:mod:`errbudget.budget.allowance`): the step is adequate when none exceeds 1 and no
+    artefact appears.
+    """
     level = candidates.level(step)
     errors = discretisation_errors(case, level.values, reference)
     ratios = []
@@ -98,13 +103,13 @@ def judge_step(case: Case, candidates: Candidates, reference, step: float, sprea
             continue
         discretisation = float(np.percentile(errors[q], case.budget.percentile))
         numerical = discretisation + roundoff_bound(case, reference, q, step, scale)
-        sd = spreads[q]["sd"] or 0.0
-        ratios.append(numerical / sd if sd > 0 else (0.0 if numerical == 0 else math.inf))
+        allowed = allowances[q]
+        ratios.append(numerical / allowed if allowed > 0 else (0.0 if numerical == 0 else math.inf))
     present = candidates.artefacts(step)
     worst = max(ratios)
     return Judged(
         step=step,
-        adequate=worst <= case.budget.fraction and not present,
+        adequate=worst <= 1.0 and not present,
         worst_ratio=worst,
         ratios=ratios,
         artefacts=present,
@@ -113,7 +118,7 @@ def judge_step(case: Case, candidates: Candidates, reference, step: float, sprea
     )
 
 
-def recommend(case: Case, candidates: Candidates, reference, *, spreads, limits,
+def recommend(case: Case, candidates: Candidates, reference, *, allowances, limits,
               scale: float) -> Recommendation:  # fmt: skip
     """The coarsest candidate that meets the rule and whose half meets it too.
 
@@ -127,33 +132,33 @@ def recommend(case: Case, candidates: Candidates, reference, *, spreads, limits,
         if step >= limit:
             tried.append(Judged(step, False, None, note="beyond the stability limit"))
             continue
-        result = judge_step(case, candidates, reference, step, spreads, scale)
+        result = judge_step(case, candidates, reference, step, allowances, scale)
         tried.append(result)
         if result.adequate:
-            half = judge_step(case, candidates, reference, step / 2, spreads, scale)
+            half = judge_step(case, candidates, reference, step / 2, allowances, scale)
             if half.adequate:
                 return Recommendation(step, half, tried, None)
     if not tried:
         reason = "the horizon is too short for any candidate step; lengthen it or give a finer step"
     else:
-        reason = why_none(case, tried, spreads, reference, scale)
+        reason = why_none(case, tried, allowances, reference, scale)
     return Recommendation(None, None, tried, reason)
 
 
-def why_none(case: Case, tried: Sequence[Judged], spreads, reference, scale: float) -> str:
+def why_none(case: Case, tried: Sequence[Judged], allowances, reference, scale: float) -> str:
     """Why no candidate qualifies, and what would change that."""
     finest = tried[-1].step
     finest_text = with_unit(f"{finest:g}", finest, case.time_unit)
     start = f"no candidate step down to {finest_text} meets the rule"
     for q, spec in enumerate(case.quantities):
-        sd = spreads[q]["sd"] or 0.0
-        if sd <= 0:
+        allowed = allowances[q]
+        if allowed <= 0:
             return (
                 f'{start}: "{spec.name}" has no parameter spread, so it leaves no allowance '
                 "for numerical error; make an input it depends on uncertain, or drop it "
                 "from the budget"
             )
-        if roundoff_bound(case, reference, q, finest, scale) > case.budget.fraction * sd:
+        if roundoff_bound(case, reference, q, finest, scale) > allowed:
             return (
                 f'{start}: round-off would dominate "{spec.name}" before the '
                 "discretisation error is small enough; raise [budget] fraction or accept "
@@ -166,6 +171,6 @@ def why_none(case: Case, tried: Sequence[Judged], spreads, reference, scale: flo
             f"{start}: every candidate shows artefacts ({codes}); check the law and its parameters"
         )
     return (
-        f"{start}: the adequate step is finer than the reference levels reach; raise "
-        "[budget] memory_limit, shorten the horizon, or raise [budget] fraction"
+        f"{start}: the adequate step is finer than the reference levels reach (the finest "
+        "reference level is capped); shorten the horizon, or raise [budget] fraction"
     )

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from errbudget.budget import allowance
 from errbudget.budget.search import candidate_steps
 from errbudget.case.load import Case
 from errbudget.errors import InputError
@@ -22,6 +23,8 @@ from errbudget.estimates.ladder import MAX_STEPS, RATIO, Ladder
 from errbudget.estimates.richardson import richardson
 from errbudget.solve.ensemble import n_steps_for
 
+CALIBRATION_WORK = 2_000_000  # member-steps a speed measurement needs to mean anything
+CALIBRATION_MEMBERS = 4096  # members of the calibration run (whole blocks for every thread)
 REFERENCE_DEPTH = 8  # reference step = predicted adequate step / this (candidate, half, margin)
 OVERHEAD_SECONDS = 1.0  # what is not stepping (Sobol indices, round-off, report), roughly
 # The ensemble's error at its percentile against the nominal error, assumed before it is
@@ -52,16 +55,34 @@ class WorkPlan:
         return {"member_steps_per_second": self.speed, "predicted_seconds": self.seconds}
 
 
-def adequate_step(case: Case, errors: np.ndarray, spreads: np.ndarray, order: int) -> float:
-    """The step at which every quantity's error would be ``fraction`` of its spread [time].
+def speed(case: Case, level, params: dict) -> float:
+    """The engine's member-steps per second, from the timed case's step, or a calibration.
 
-    ``errors`` and ``spreads`` hold one value per quantity at the case's step; the error is
+    The case's step over the ensemble is the first work of a run; when it is too small to
+    time (fewer than CALIBRATION_WORK member-steps), the nominal member is stepped as
+    CALIBRATION_MEMBERS copies at a step fine enough to make CALIBRATION_WORK.
+    """
+    if level.member_steps >= CALIBRATION_WORK:
+        return level.member_steps / max(level.seconds, 1e-9)
+    from errbudget.solve.stream import stream
+
+    copies = {k: np.full(CALIBRATION_MEMBERS, float(np.asarray(v).reshape(-1)[0]))
+              for k, v in params.items()}  # fmt: skip
+    steps = max(1, CALIBRATION_WORK // CALIBRATION_MEMBERS)
+    timed = stream(case, copies, [case.horizon / steps])[0]
+    return timed.member_steps / max(timed.seconds, 1e-9)
+
+
+def adequate_step(case: Case, errors: np.ndarray, allowed: np.ndarray, order: int) -> float:
+    """The step at which every quantity's error would be within its allowance [time].
+
+    ``errors`` and ``allowed`` hold one value per quantity at the case's step; the error is
     taken to scale as h^p (p the formal order). Infinite when nothing limits the step.
     """
     needed = math.inf
-    for error, sd in zip(errors, spreads, strict=True):
-        if math.isfinite(error) and math.isfinite(sd) and error > 0 and sd > 0:
-            needed = min(needed, case.step * (case.budget.fraction * sd / error) ** (1 / order))
+    for error, share in zip(errors, allowed, strict=True):
+        if math.isfinite(error) and math.isfinite(share) and error > 0 and share > 0:
+            needed = min(needed, case.step * (share / error) ** (1 / order))
     return needed
 
 
@@ -87,12 +108,12 @@ def deeper_step(case: Case, needed: float, finest: float) -> tuple[float | None,
 
 
 def predict(case: Case, chosen: Ladder, case_values: np.ndarray, members, order: int,
-            speed: float) -> WorkPlan:  # fmt: skip
+            speed: float, scale: float) -> WorkPlan:  # fmt: skip
     """Predict the member-steps and seconds of the passes after the case's step.
 
     ``case_values`` (Q, S) are the quantities at the case's step over the ensemble (their
-    spread over ``members`` stands in for the parameter spread); ``speed`` is the measured
-    member-steps per second.
+    spread over ``members`` stands in for the parameter spread); ``scale`` is their largest
+    |N| [population]; ``speed`` is the measured member-steps per second.
     """
     rows = case_values.shape[1]
     finer, finest = chosen.steps[-2], chosen.steps[-1]
@@ -100,8 +121,9 @@ def predict(case: Case, chosen: Ladder, case_values: np.ndarray, members, order:
     with np.errstate(all="ignore"):
         reference = richardson(column[-1], column[-2], RATIO, order)
         errors = ENSEMBLE_MARGIN * np.abs(column[0] - reference)
-        spreads = np.array([_sd(case_values[q, members]) for q in range(case_values.shape[0])])
-    needed = adequate_step(case, errors, spreads, order)
+        spreads = [_sd(case_values[q, members]) for q in range(case_values.shape[0])]
+    allowed = np.array(allowance.allowances(case, spreads, allowance.resolution(case, scale)))
+    needed = adequate_step(case, errors, allowed, order)
     parts = {
         "reference levels": rows
         * (n_steps_for(case.horizon, finer) + n_steps_for(case.horizon, finest))

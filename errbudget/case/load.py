@@ -9,19 +9,20 @@ from __future__ import annotations
 
 import hashlib
 import tomllib
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
 
 from errbudget.case.distributions import Distribution
-from errbudget.case.limits import MAX_FINEST_STEPS
+from errbudget.case.limits import LADDER_HALVINGS, MAX_FINEST_STEPS
 from errbudget.case.parameters import Parameter, builtin_parameters, custom_model
 from errbudget.case.reader import CaseReader
 from errbudget.case.units import (
     check_population_unit,
     ensure_count_units,
     format_unit,
+    is_count,
     parse_quantity,
     parse_unit,
     ureg,
@@ -43,6 +44,7 @@ BUDGET_KEYS = (
     "level",
     "memory_limit",
     "time_limit",
+    "resolution",
 )
 COUNTS_KEYS = ("file", "time", "time_unit", "count", "error", "fit", "start")
 ERROR_MODELS = ("poisson", "negative-binomial", "lognormal", "normal")
@@ -50,6 +52,7 @@ MAX_CASE_BYTES = 1_000_000  # a case file is a few kilobytes; refuse anything ab
 MIN_SAMPLES = 16  # smallest Sobol base sample (see spread.MIN_BASE_SAMPLES)
 DEFAULT_MEMORY_LIMIT_MB = 4096  # resource ceiling for one run, overridable per case
 DEFAULT_TIME_LIMIT_S = 60.0  # a run predicted to take longer is refused unless asked for
+HALF_AN_INDIVIDUAL = 0.5  # default resolution of a count [individuals]
 
 
 @dataclass(frozen=True)
@@ -61,6 +64,9 @@ class BudgetSpec:
     level: float = 0.9
     memory_limit_mb: float = DEFAULT_MEMORY_LIMIT_MB
     time_limit_s: float = DEFAULT_TIME_LIMIT_S
+    # Smallest difference of a population that can change a decision [population unit];
+    # None: half an individual for count units, else RESOLUTION_SHARE of the largest state.
+    resolution: float | None = None
 
 
 @dataclass(frozen=True)
@@ -86,6 +92,7 @@ class Case:
     model: models.GrowthModel
     rate_text: str | None
     population_unit: str
+    counted: bool  # the population is a count of individuals (not a mass or a density)
     time_unit: str
     scheme: str
     step: float
@@ -200,7 +207,7 @@ def load_case(path: str | Path) -> Case:
         parameters = builtin_parameters(reader, model, params_table, population, time_unit)
 
     quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon)
-    budget = _budget(reader, data.get("budget", {}))
+    budget = _budget(reader, data.get("budget", {}), population)
     counts = _counts(reader, data.get("counts"), time_unit, parameters)
 
     return Case(
@@ -211,6 +218,7 @@ def load_case(path: str | Path) -> Case:
         model=model,
         rate_text=rate_text,
         population_unit=format_unit(population),
+        counted=is_count(population),
         time_unit=format_unit(time_unit),
         scheme=scheme_name,
         step=step,
@@ -223,19 +231,19 @@ def load_case(path: str | Path) -> Case:
 
 
 def _check_step_count(reader: CaseReader, step: float, horizon: float, time_unit) -> None:
-    """Refuse a step so small that the refinement ladder could not halve it twice.
+    """Refuse a step so small that the refinement ladder could not reach its five levels.
 
-    The ladder (errbudget.estimates.ladder) needs the case's step and at least two
-    halvings, and stops at ``MAX_FINEST_STEPS`` steps on its finest level; a case beyond
-    that would fail mid-run.
+    The ladder (errbudget.estimates.ladder) halves the case's step at least
+    LADDER_HALVINGS times and stops at ``MAX_FINEST_STEPS`` steps on its finest level; a case
+    beyond that could not be judged.
     """
-    most = MAX_FINEST_STEPS // 4  # the case's step halved twice must fit
+    most = MAX_FINEST_STEPS // 2**LADDER_HALVINGS
     if horizon / step > most:
         label = format_unit(time_unit)
         raise reader.fail(
             f"the horizon ({horizon:g} {label}) holds {horizon / step:.3g} steps of "
             f"{step:g} {label}; at most {most} are accepted (the refinement ladder halves the "
-            f"step twice): use a step of at least {horizon / most:.3g} {label}",
+            f"step {LADDER_HALVINGS} times): use a step of at least {horizon / most:.3g} {label}",
             "simulation.step",
         )
 
@@ -293,16 +301,29 @@ def _quantities(reader, entries, population, time_unit, horizon) -> tuple[Quanti
                 population,
                 "a population level",
             )
-            if level <= 0:
-                raise reader.fail("the level must be positive", f"{where}.level")
+            if level < 0:
+                raise reader.fail(
+                    "the level cannot be negative; accepted: 0 (clearance, extinction) or a "
+                    "positive population",
+                    f"{where}.level",
+                )
         elif "level" in entry:
             raise reader.fail('"level" is only used with kind = "time-to"', f"{where}.level")
         specs.append(QuantitySpec(name, kind, at, level))
     return tuple(specs)
 
 
-def _budget(reader, table) -> BudgetSpec:
+def _budget(reader, table, population) -> BudgetSpec:
     spec = _budget_values(reader, table)
+    if isinstance(table, dict) and "resolution" in table:
+        value = reader.quantity(
+            table["resolution"], "budget.resolution", population, "a population difference"
+        )
+        if not value > 0:
+            raise reader.fail("the resolution must be positive", "budget.resolution")
+        spec = replace(spec, resolution=value)
+    elif is_count(population):
+        spec = replace(spec, resolution=HALF_AN_INDIVIDUAL)
     if not is_design_size(spec.samples):
         raise reader.fail(
             f"{spec.samples} is not a power of two of at least {MIN_SAMPLES}; accepted: a "

@@ -65,6 +65,14 @@ def check_population_unit(unit: pint.Unit, text: str, where: str) -> None:
         )
 
 
+def is_count(unit: pint.Unit) -> bool:
+    """Whether ``unit`` counts individuals (one count dimension, not per area or volume)."""
+    dims = dict(ureg.Quantity(1, unit).dimensionality)
+    return (
+        len(dims) == 1 and next(iter(dims)) in COUNT_DIMENSIONS and next(iter(dims.values())) == 1
+    )
+
+
 def parse_unit(text: str, where: str) -> pint.Unit:
     """Parse a unit expression such as ``"mussel / m**2"``."""
     if not isinstance(text, str) or not text.strip():

@@ -32,7 +32,8 @@ def judge(coarse: Features, fine: Features, levels: np.ndarray) -> dict[str, np.
     -------
     dict of str to bool ndarray (S,)
         Keys ``divergence`` (non-finite, or |N| beyond DIVERGENCE_FACTOR times the accurate
-        solution's largest), ``negative`` (below zero where the accurate solution is not),
+        solution's largest), ``negative`` (the population reaches zero, where it is
+        absorbed, while the accurate solution stays above it),
         ``overshoot`` (both sides of a stable level the accurate solution approaches from one
         side), ``oscillation`` (more turns of the increments than the accurate solution), and
         ``sustained`` (oscillation still present in the last quarter of the run: a cycle, not
@@ -43,7 +44,7 @@ def judge(coarse: Features, fine: Features, levels: np.ndarray) -> dict[str, np.
         runaway = coarse.largest > DIVERGENCE_FACTOR * np.where(fine_ok, fine.largest, np.inf)
     divergence = fine_ok & (~coarse.finite | runaway)
     judged = fine_ok & ~divergence
-    negative = judged & (coarse.smallest < 0) & (fine.smallest >= 0)
+    negative = judged & (coarse.smallest <= 0) & (fine.smallest > 0)
     valid = np.isfinite(np.asarray(levels, dtype=float).reshape(coarse.above.shape))
     crossed = coarse.above & coarse.below & ~(fine.above & fine.below)
     overshoot = judged & (valid & crossed).any(axis=0)
@@ -82,7 +83,8 @@ def detect(
 MESSAGES = {
     "divergence": "the solution blows up or becomes undefined (overflow or not a number) at "
     "the case's step while the accurate solution stays bounded",
-    "negative": "the population goes below zero at the case's step; the accurate solution does not",
+    "negative": "the population reaches zero (or would step below it) at the case's step while "
+    "the accurate solution stays above zero",
     "overshoot": "the solution crosses a stable equilibrium that the accurate solution "
     "approaches from one side",
     "oscillation": "the increments change sign more often than in the accurate solution "

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from errbudget.case.limits import MAX_FINEST_STEPS
+from errbudget.case.limits import LADDER_HALVINGS, MAX_FINEST_STEPS
 from errbudget.case.load import Case
 from errbudget.estimates.convergence import FORMAL_ORDER_TOLERANCE, grid_convergence
 from errbudget.estimates.richardson import ROUNDOFF_FACTOR
@@ -21,7 +21,7 @@ from errbudget.solve.tableaux import get_scheme
 from errbudget.solve.trajectory import locate
 
 RATIO = 2  # constant refinement ratio of the ladder
-MIN_LEVELS = 5  # the case's step and four refinements
+MIN_LEVELS = LADDER_HALVINGS + 1  # the case's step and four refinements
 MAX_LEVELS = 12  # h / 2048 at most
 MAX_STEPS = MAX_FINEST_STEPS  # steps of the finest level at most, whatever the case
 ORDER_TOLERANCE = FORMAL_ORDER_TOLERANCE  # one tolerance: settled and trusted alike
@@ -39,13 +39,21 @@ def settled(values: np.ndarray, formal: int) -> bool:
     scale = max(np.abs(values).max(), 1e-300)
     if diffs[-1] <= ROUNDOFF_FLOOR * scale:
         return True
+    orders = last_orders(values)
+    return all(p is not None and abs(p - formal) <= ORDER_TOLERANCE * formal for p in orders)
+
+
+def last_orders(values: np.ndarray) -> list[float | None]:
+    """Observed orders of the last two triplets of a ladder column (None where undefined)."""
+    if values.size < 4:
+        return []
+    diffs = np.abs(np.diff(values))
     orders = []
     for first in (-3, -2):
         a, b = diffs[first], diffs[first + 1]
-        if b <= 0 or a <= 0:
-            return False
-        orders.append(np.log(a / b) / np.log(RATIO))
-    return all(abs(p - formal) <= ORDER_TOLERANCE * formal for p in orders)
+        ok = a > 0 and b > 0 and np.isfinite(a) and np.isfinite(b)
+        orders.append(float(np.log(a / b) / np.log(RATIO)) if ok else None)
+    return orders
 
 
 @dataclass(frozen=True)
@@ -62,6 +70,8 @@ class Ladder:
         Per quantity, whether the observed order settled (see :func:`settled`).
     capped : bool
         The ladder stopped at a cap before every quantity settled.
+    capped_by : str or None
+        Which cap: "levels" (MAX_LEVELS) or "steps" (MAX_STEPS on the finest level).
     off_grid : list of bool
         Per quantity, whether its time falls between grid points of the case's step.
     convergence : list of GridConvergence or None
@@ -77,6 +87,7 @@ class Ladder:
     off_grid: list[bool]
     convergence: list
     case_level: list
+    capped_by: str | None = None
 
 
 def build(case: Case) -> Ladder:
@@ -84,7 +95,7 @@ def build(case: Case) -> Ladder:
     scheme = get_scheme(case.scheme)
     params = nominal_params(case)
     steps, rows = [], []
-    capped = False
+    capped, capped_by = False, None
     while True:
         step = case.step / RATIO ** len(steps)
         rows.append(stream(case, params, [step])[0].values[:, 0])
@@ -96,6 +107,7 @@ def build(case: Case) -> Ladder:
         next_steps = n_steps_for(case.horizon, case.step / RATIO ** len(steps))
         if len(steps) >= MAX_LEVELS or next_steps > MAX_STEPS:
             capped = True
+            capped_by = "levels" if len(steps) >= MAX_LEVELS else "steps"
             break
     columns = table.T
     return Ladder(
@@ -103,6 +115,7 @@ def build(case: Case) -> Ladder:
         values=table,
         settled=done,
         capped=capped,
+        capped_by=capped_by,
         off_grid=[
             spec.kind == "value" and locate(spec.at, case.step)[0] < 0 for spec in case.quantities
         ],

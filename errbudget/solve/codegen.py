@@ -23,7 +23,7 @@ from pathlib import Path
 
 CACHE_ENV = "ERRBUDGET_CACHE_DIR"  # overrides the per-user cache folder (tests, benchmarks)
 BLOCK = 512  # samples stepped together by one thread: 4 KB per state row, stays in L1
-FORMAT_VERSION = 6  # bump when the template changes, so stale modules are not reused
+FORMAT_VERSION = 7  # bump when the template changes, so stale modules are not reused
 
 _BINARY_TEXT = {ast.Add: "+", ast.Sub: "-", ast.Mult: "*", ast.Div: "/", ast.Pow: "**"}
 _FUNCTION_TEXT = {"exp": "math.exp", "log": "_log", "sqrt": "_sqrt", "abs": "abs"}
@@ -71,8 +71,8 @@ def rate(t_, n_{params}):
 
 
 @njit(cache=True, error_model="numpy", nogil=True)
-def kernel(out, p, h, n_steps, lo, hi, t_factor, n_factor, out_factor):
-    # {label}: the tableau below is unrolled into scalar code per member
+def kernel(out, p, h, n_steps, lo, hi, t_factor, n_factor, out_factor, cleared_at, cleared_value):
+    # {label}: the tableau below is unrolled into scalar code per member; zero is absorbing
 {hoist}
     for first in range(lo, hi, {block}):
         last = min(first + {block}, hi)
@@ -86,6 +86,10 @@ def kernel(out, p, h, n_steps, lo, hi, t_factor, n_factor, out_factor):
             for s in range(m):
                 y = cur[s]
 {stages}
+                if y != 0.0 and y_new <= 0.0 and cleared_at[first + s] < 0:
+                    cleared_at[first + s] = n + 1
+                    cleared_value[first + s] = y_new
+                new[s] = 0.0 if (y == 0.0 or y_new <= 0.0) else y_new
 
 
 @njit(ADVANCE, cache=True, error_model="numpy", nogil=True)
@@ -169,7 +173,7 @@ def _stepping(scheme, args: str) -> dict[str, str]:
     for i in range(1, scheme.stages):
         if scheme.b[i] != 0:
             increment = f"({increment} + {float(scheme.b[i])!r} * k{i})"
-    lines.append(f"                new[s] = y + h * {increment}")
+    lines.append(f"                y_new = y + h * {increment}")
     return {
         "hoist": "\n".join(hoist) or "    pass",
         "times": "\n".join(times),
@@ -188,7 +192,7 @@ def _dedent(lines: str, levels: int) -> str:
 def _advance(scheme, args: str, call: str) -> dict[str, str]:
     """One step of one member, in the operation order of the trajectory kernel above."""
     body = _stepping(scheme, args)
-    stages = _dedent(body["stages"], 2).replace("new[s] = ", "y_new = ")
+    stages = _dedent(body["stages"], 2)
     return {
         "advance_times": _dedent(body["times"], 2),
         "advance_stages": stages,

@@ -149,6 +149,7 @@ def integrate_compiled(
     n_steps: int,
     scheme: Scheme,
     threads: int | None = None,
+    cleared: dict | None = None,
 ) -> np.ndarray:
     """Same contract as :func:`errbudget.solve.tableaux.integrate` with ``dtype=float64``.
 
@@ -163,11 +164,15 @@ def integrate_compiled(
     out = np.empty((n_steps + 1, size))
     out[0] = y0
     factors = (spec.t_factor, spec.n_factor, spec.out_factor)
+    first = np.full(size, -1, dtype=np.int64)
+    value = np.zeros(size)
 
     def fill(lo, hi):
-        kernel(out, rows, float(step), int(n_steps), lo, hi, *factors)
+        kernel(out, rows, float(step), int(n_steps), lo, hi, *factors, first, value)
 
     run_threaded(fill, size, threads)
+    if cleared is not None:
+        cleared["index"], cleared["value"] = first, value
     return out
 
 

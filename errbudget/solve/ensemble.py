@@ -46,14 +46,21 @@ def solve(
     law = {name: np.asarray(value, dtype=dtype) for name, value in params.items() if name != "N0"}
     n_steps = n_steps_for(case.horizon, step)
     found = compiled(case.model, scheme) if np.dtype(dtype) == np.float64 else None
+    cleared: dict = {}
     if found is not None:
         module, spec = found
         states = engine.integrate_compiled(
-            module.kernel, spec, params["N0"], law, step, n_steps, scheme
+            module.kernel, spec, params["N0"], law, step, n_steps, scheme, cleared=cleared
         )
     else:  # the numpy reference: float32 / long double, or numba unavailable
-        states = integrate(case.model.rate, params["N0"], law, step, n_steps, scheme, dtype=dtype)
-    return Trajectory(states, step, case.horizon, case.model.rate, law)
+        states = integrate(
+            case.model.rate, params["N0"], law, step, n_steps, scheme, dtype=dtype,
+            cleared=cleared,
+        )  # fmt: skip
+    return Trajectory(
+        states, step, case.horizon, case.model.rate, law,
+        cleared_at=cleared["index"], cleared_value=cleared["value"],
+    )  # fmt: skip
 
 
 def compiled(model, scheme: Scheme) -> tuple[object, engine.RateSpec] | None:

@@ -296,9 +296,10 @@ def stream_reference(
     for h in steps:
         started = time.perf_counter()
         n_steps = ensemble.n_steps_for(problem.horizon, h)
+        cleared: dict = {}
         with np.errstate(all="ignore"):
-            states = integrate(problem.model.rate, n0, law, h, n_steps, scheme)
-        traj = Trajectory(states, h, problem.horizon, problem.model.rate, law)
+            states = integrate(problem.model.rate, n0, law, h, n_steps, scheme, cleared=cleared)
+        traj = Trajectory(states, h, problem.horizon, problem.model.rate, law, **_at(cleared))
         values, moments = _quantities(problem, traj)
         last = traj.last_index
         tail = max(0, int(readout.tails.get(h, tail_start(last))))
@@ -324,6 +325,11 @@ def stream_reference(
             )
         )
     return out
+
+
+def _at(cleared: dict) -> dict:
+    """Trajectory keywords from integrate's ``cleared`` record."""
+    return {"cleared_at": cleared["index"], "cleared_value": cleared["value"]}
 
 
 def _quantities(problem: Problem, traj: Trajectory) -> tuple[np.ndarray, np.ndarray]:

@@ -68,6 +68,12 @@ def _sign(x):
 
 
 @njit(cache=True, error_model="numpy")
+def _floor(value):
+    """A value read between grid points, never below zero (NaN stays NaN)."""
+    return 0.0 if value < 0.0 else value
+
+
+@njit(cache=True, error_model="numpy")
 def _better(value, time, best, best_time, largest):
     """Whether a candidate replaces the best so far (NaN is kept once met; ties: earliest)."""
     if best != best:
@@ -110,7 +116,12 @@ def step_level(
     Q = kinds.size
     E = equilibria.shape[0]
     y, y_next, y_prev = n0[first : first + m].copy(), np.empty(m), np.empty(m)
-    f, f_prev = np.empty(m), np.empty(m)
+    f, f_now, f_prev = np.empty(m), np.empty(m), np.empty(m)
+    # Zero is absorbing. A member that reaches zero at point n keeps, for the interval
+    # behind n, the step's own end value (``reached``) and the slope there (``reached_f``).
+    just = np.zeros(m, dtype=np.bool_)
+    reached, reached_f = np.zeros(m), np.zeros(m)
+    end_y, end_f = np.empty(m), np.empty(m)
     finite_all = np.ones(m, dtype=np.bool_)
     largest, smallest, scale = np.zeros(m), np.full(m, math.inf), np.zeros(m)
     safe_prev = np.zeros(m)
@@ -140,11 +151,24 @@ def step_level(
             advance_block(y, y_next, f, t, h, p, first, m, factors)
         else:
             slope_block(y, f, t, p, first, m, factors)
+        any_reached = False
+        for j in range(m):  # an absorbed member does not move: its slope is zero
+            f_now[j] = 0.0 if y[j] == 0.0 else f[j]
+            end_y[j] = y[j]
+            end_f[j] = f_now[j]
+            any_reached = any_reached or just[j]
+        if any_reached:  # rare: the interval that reaches zero ends at the step's own value
+            slope_block(reached, reached_f, t, p, first, m, factors)
+            for j in range(m):
+                if just[j]:
+                    end_y[j] = reached[j]
+                    end_f[j] = reached_f[j]
         if n >= 1:
             _interval(
-                n, m, first, y_prev, y, f_prev, f, h, last, horizon, kinds, levels, at_grid,
-                at_index, at_s, end_grid, end_index, end_s, side, found, hit, best, best_time,
-                out, counting, count_grid, count_index, count_s, count_slot, counted,
+                n, m, first, y_prev, end_y, f_prev, end_f, y, h, last, horizon, kinds, levels,
+                at_grid, at_index, at_s, end_grid, end_index, end_s, side, found, hit, best,
+                best_time, out, counting, count_grid, count_index, count_s, count_slot,
+                counted,
             )  # fmt: skip
         for j in range(m):
             value = y[j]
@@ -187,8 +211,15 @@ def step_level(
             record += 1
         for j in range(m):
             safe_prev[j] = y[j] if math.isfinite(y[j]) else 0.0
+        if n < n_steps:
+            for j in range(m):  # zero is absorbing: a step ending at or below it ends at it
+                stepped = y_next[j]
+                stop = y[j] == 0.0 or stepped <= 0.0
+                just[j] = y[j] != 0.0 and stepped <= 0.0
+                reached[j] = stepped
+                y_next[j] = 0.0 if stop else stepped
         y_prev, y, y_next = y, y_next, y_prev
-        f_prev, f = f, f_prev
+        f_prev, f_now = f_now, f_prev
     for j in range(m):
         s = first + j
         features[F_FINITE, s] = 1.0 if finite_all[j] else 0.0
@@ -219,11 +250,17 @@ def _count_turns(y, safe_prev, carried, turns, m):
 
 @njit(cache=True, error_model="numpy")
 def _interval(
-    n, m, first, y0s, y1s, f0s, f1s, h, last, horizon, kinds, levels, at_grid, at_index,
-    at_s, end_grid, end_index, end_s, side, found, hit, best, best_time, out, counting,
-    count_grid, count_index, count_s, count_slot, counted,
+    n, m, first, y0s, y1s, f0s, f1s, states, h, last, horizon, kinds, levels, at_grid,
+    at_index, at_s, end_grid, end_index, end_s, side, found, hit, best, best_time, out,
+    counting, count_grid, count_index, count_s, count_slot, counted,
 ):  # fmt: skip
-    """Read-offs on the interval [n-1, n]: crossings, interior extrema, off-grid values."""
+    """Read-offs on the interval [n-1, n]: crossings, interior extrema, off-grid values.
+
+    The interval runs from state n-1 to (y1s, f1s): state n, or where a member reached zero
+    at n, the step's own end value and the slope there. ``states`` holds the states at n,
+    which decide whether a level was crossed. Values read between grid points are never
+    below zero (the population is absorbed there).
+    """
     for q in range(kinds.size):
         kind = kinds[q]
         if kind == TIME_TO and n <= last + 1:
@@ -247,7 +284,7 @@ def _interval(
         elif kind == VALUE:
             if at_grid[q] < 0 and at_index[q] == n - 1:
                 for j in range(m):
-                    out[q, j] = hermite(y0s[j], y1s[j], f0s[j] * h, f1s[j] * h, at_s[q])
+                    out[q, j] = _floor(hermite(y0s[j], y1s[j], f0s[j] * h, f1s[j] * h, at_s[q]))
         elif kind >= PEAK:
             largest = kind == PEAK
             if n <= last:
@@ -258,7 +295,7 @@ def _interval(
                     )  # fmt: skip
             if end_grid < 0 and end_index == n - 1:
                 for j in range(m):
-                    value = hermite(y0s[j], y1s[j], f0s[j] * h, f1s[j] * h, end_s)
+                    value = _floor(hermite(y0s[j], y1s[j], f0s[j] * h, f1s[j] * h, end_s))
                     if _better(value, horizon, best[q, j], best_time[q, j], largest):
                         best[q, j] = value
                         best_time[q, j] = horizon
@@ -269,7 +306,7 @@ def _interval(
                     slot = count_slot[first + j]
                     if slot >= 0:
                         d0, d1 = f0s[j] * h, f1s[j] * h
-                        counted[c, slot] = hermite(y0s[j], y1s[j], d0, d1, count_s[c])
+                        counted[c, slot] = _floor(hermite(y0s[j], y1s[j], d0, d1, count_s[c]))
 
 
 @njit(cache=True, error_model="numpy")
@@ -287,7 +324,7 @@ def _interior_extrema(q, j, y0, y1, d0, d1, start, h, largest, best, best_time):
         inside = sk > 0 and sk < 1
         if not inside:
             sk = 0.0
-        value = hermite(y0, y1, d0, d1, sk) if inside else y0
+        value = _floor(hermite(y0, y1, d0, d1, sk)) if inside else y0
         if _better(value, (start + sk) * h, best[q, j], best_time[q, j], largest):
             best[q, j] = value
             best_time[q, j] = (start + sk) * h

@@ -128,10 +128,16 @@ def integrate(
     scheme: Scheme,
     *,
     dtype: type = np.float64,
+    cleared: dict | None = None,
+    absorbing: bool = True,
 ) -> np.ndarray:
-    """Advance every member of an ensemble with a fixed step.
+    """Advance every member of an ensemble with a fixed step; zero is absorbing.
 
     y_{n+1} = y_n + h sum_i b_i k_i,  k_i = f(t_n + c_i h, y_n + h sum_j a_ij k_j).
+
+    A population that reaches zero stays there (common practice in population models): a
+    step that ends at or below zero ends at zero, and a state at zero is not stepped.
+    ``absorbing=False`` steps any ODE as it is (states may be negative).
 
     Parameters
     ----------
@@ -150,6 +156,10 @@ def integrate(
         The tableau.
     dtype : numpy float type
         Arithmetic used throughout (float32, float64 or longdouble for round-off studies).
+    cleared : dict, optional
+        Filled with ``index`` (S,), the grid index at which each member reached zero (-1:
+        never), and ``value`` (S,), the step's own end value there before it was set to
+        zero (what read-offs on that last step interpolate towards) [population].
 
     Returns
     -------
@@ -158,9 +168,10 @@ def integrate(
         keeps non-finite values; callers detect and flag it (no exception is raised).
     """
     y = np.array(n0, dtype=dtype, copy=True).reshape(-1)
+    size = y.size
     p = {name: np.asarray(value, dtype=dtype) for name, value in params.items()}
-    out = np.empty((n_steps + 1, y.size), dtype=dtype)
-    if y.size == 1 and np.dtype(dtype) == np.longdouble:
+    out = np.empty((n_steps + 1, size), dtype=dtype)
+    if size == 1 and np.dtype(dtype) == np.longdouble:
         # One member in long double (the round-off reference runs): the same operations on
         # numpy scalars, several times faster than on one-element arrays. (float32 stays on
         # arrays: numpy's float32 scalar power is not the array ufunc's.)
@@ -170,7 +181,10 @@ def integrate(
     a = [[dtype(x) for x in row] for row in scheme.a]
     b = [dtype(x) for x in scheme.b]
     c = [dtype(x) for x in scheme.c]
+    zero = dtype(0)
     out[0] = y
+    first = np.full(size, -1, dtype=np.int64)
+    last_value = np.zeros(size, dtype=dtype)
     k = [None] * scheme.stages
     with np.errstate(all="ignore"):
         for n in range(n_steps):
@@ -185,6 +199,15 @@ def integrate(
             for i in range(1, scheme.stages):
                 if b[i] != 0:
                     increment = increment + b[i] * k[i]
-            y = y + h * increment
+            stepped = y + h * increment
+            if absorbing:
+                reached = np.reshape((y != 0) & (stepped <= 0), -1) & (first < 0)
+                first = np.where(reached, n + 1, first)
+                last_value = np.where(reached, np.reshape(stepped, -1), last_value)
+                stepped = np.where((y == 0) | (stepped <= 0), zero, stepped)
+            y = stepped
             out[n + 1] = y
+    if cleared is not None:
+        cleared["index"] = first
+        cleared["value"] = last_value
     return out

@@ -53,6 +53,10 @@ def tail_start(last: int) -> int:
 class Trajectory:
     """States of an ensemble on a fixed grid t_n = n h, n = 0..n_steps (t_last >= horizon).
 
+    Zero is absorbing (see :func:`errbudget.solve.tableaux.integrate`): a state at zero has
+    slope zero, and on the step where a member reached zero the read-offs interpolate towards
+    the step's own end value ``cleared_value`` at ``cleared_at``.
+
     Attributes
     ----------
     states : ndarray, shape (n_steps + 1, S) [population]
@@ -60,6 +64,8 @@ class Trajectory:
     horizon : float [time]
     rate : callable f(t, N, params) [population / time]
     params : mapping of name to (S,) arrays
+    cleared_at : ndarray (S,) of int, optional -- grid index where each member reached zero
+    cleared_value : ndarray (S,), optional -- the step's own end value there [population]
     """
 
     states: np.ndarray
@@ -67,16 +73,19 @@ class Trajectory:
     horizon: float
     rate: Callable
     params: Mapping[str, np.ndarray]
+    cleared_at: np.ndarray | None = None
+    cleared_value: np.ndarray | None = None
 
     def slope(self, index) -> np.ndarray:
-        """f at grid points ``index`` (an int, or one per member) [population / time]."""
+        """f at grid points ``index`` (an int, or one per member); zero where N is zero."""
         members = np.arange(self.states.shape[1])
         index = np.broadcast_to(np.asarray(index), members.shape)
+        states = self.states[index, members]
         with np.errstate(all="ignore"):
-            return np.asarray(
-                self.rate(index * self.step, self.states[index, members], self.params),
-                dtype=self.states.dtype,
+            slopes = np.asarray(
+                self.rate(index * self.step, states, self.params), dtype=self.states.dtype
             )
+        return np.where(states == 0, self.states.dtype.type(0), slopes)
 
     def interval(self, index) -> tuple[np.ndarray, ...]:
         """End values and step-scaled end slopes (y0, y1, d0, d1) of the interval ``index``.
@@ -91,6 +100,39 @@ class Trajectory:
         y1 = self.states[index + 1, members].astype(wide)
         d0 = self.slope(index).astype(wide) * self.step
         d1 = self.slope(index + 1).astype(wide) * self.step
+        if self.cleared_at is not None:
+            reached = index + 1 == self.cleared_at
+            if reached.any():
+                value = self.cleared_value.astype(self.states.dtype)
+                with np.errstate(all="ignore"):
+                    slope = np.asarray(
+                        self.rate((index + 1) * self.step, value, self.params),
+                        dtype=self.states.dtype,
+                    )
+                y1 = np.where(reached, value.astype(wide), y1)
+                d1 = np.where(reached, slope.astype(wide) * self.step, d1)
+        return y0, y1, d0, d1
+
+    def intervals(self, last: int) -> tuple[np.ndarray, ...]:
+        """(y0, y1, d0, d1) of every interval 0..last-1 at once, shape (last, S) each.
+
+        The same values as :meth:`interval` row by row, in binary64 at least.
+        """
+        states = self.states[: last + 1]
+        wide = np.promote_types(self.states.dtype, np.float64)
+        times = (np.arange(last + 1) * self.step)[:, None]
+        with np.errstate(all="ignore"):
+            slopes = np.asarray(self.rate(times, states, self.params), dtype=self.states.dtype)
+        slopes = np.where(states == 0, self.states.dtype.type(0), slopes)
+        d = slopes.astype(wide) * self.step
+        y = states.astype(wide)
+        y0, y1, d0, d1 = y[:-1], y[1:].copy(), d[:-1], d[1:].copy()
+        if self.cleared_at is not None:
+            for member in np.flatnonzero((self.cleared_at >= 1) & (self.cleared_at <= last)):
+                row = int(self.cleared_at[member]) - 1
+                y1[row, member], d1[row, member] = (
+                    part[member] for part in self.interval(np.full(y.shape[1], row))[1::2]
+                )
         return y0, y1, d0, d1
 
     def value_at(self, time: float) -> tuple[np.ndarray, bool]:
@@ -99,12 +141,17 @@ class Trajectory:
         if grid >= 0:
             return self.states[grid].astype(float), False
         with np.errstate(all="ignore"):
-            return dense.hermite(*self.interval(index), s).astype(float), True
+            return floor(dense.hermite(*self.interval(index), s)).astype(float), True
 
     @property
     def last_index(self) -> int:
         """Index of the last grid point at or before the horizon."""
         return last_index(self.horizon, self.step)
+
+
+def floor(values):
+    """Values read between grid points are never below zero (NaN stays NaN)."""
+    return np.where(values < 0, 0, values)
 
 
 def time_to(traj: Trajectory, level: float) -> np.ndarray:
@@ -164,19 +211,12 @@ def extremum_with_time(traj: Trajectory, largest: bool) -> tuple[np.ndarray, np.
     with np.errstate(all="ignore"):
         if last >= 1:
             index = np.arange(last)[:, None]
-            y0, y1 = states[:-1], states[1:]
-            slopes = np.asarray(  # in the run's own arithmetic, then read in binary64
-                traj.rate(np.arange(last + 1)[:, None] * traj.step, traj.states[: last + 1],
-                          traj.params),
-                float,
-            )  # fmt: skip
-            slopes = np.broadcast_to(slopes, states.shape)
-            d0, d1 = slopes[:-1] * traj.step, slopes[1:] * traj.step
+            y0, y1, d0, d1 = (part.astype(float) for part in traj.intervals(last))
             for s in critical_points(y0, y1, d0, d1):
                 inside = (s > 0) & (s < 1)
                 s = np.where(inside, s, 0.0)
-                values.append(np.where(inside, dense.hermite(y0, y1, d0, d1, s), y0))
-                times.append(np.broadcast_to((index + s) * traj.step, s.shape))
+                values.append(np.where(inside, floor(dense.hermite(y0, y1, d0, d1, s)), y0))
+                times.append((index + s) * traj.step)
         end, _ = traj.value_at(traj.horizon)
         values.append(end[None, :])
         times.append(np.full(1, traj.horizon))
