@@ -19,11 +19,12 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
+from errbudget.case.limits import MAX_COUNT_ROWS, MAX_COUNTS_BYTES
+from errbudget.case.reader import read_regular_file
 from errbudget.errors import InputError, did_you_mean
 
-MAX_FILE_BYTES = 20 * 1024 * 1024  # field counts are small tables; anything larger is a wrong file
+MAX_FILE_BYTES = MAX_COUNTS_BYTES  # the name the tests and older callers use
 MIN_ROWS = 3  # fewest counts a growth-curve fit can use (two parameters plus the start value)
 SECONDS_PER_DAY = 86400.0
 # Cell texts read as "no value recorded" rather than as a malformed number.
@@ -172,23 +173,27 @@ def read_counts(
 
 
 def _read_bytes(path: Path, where: str) -> bytes:
-    """The whole file, after checking it exists, is a file and is not too large."""
-    source = str(path)
-    if not path.exists():
-        raise InputError(f"{where} file not found", source=source)
-    if not path.is_file():
-        raise InputError(f"{where} file is not a regular file", source=source)
-    size = path.stat().st_size
-    if size > MAX_FILE_BYTES:
+    """The whole file, after checking it is a regular file within the size and row limits."""
+    raw = read_regular_file(path, MAX_FILE_BYTES, f"{where} file")
+    _check_rows(raw, str(path), where)
+    return raw
+
+
+def _check_rows(raw: bytes, source: str, where: str) -> None:
+    """Refuse more than MAX_COUNT_ROWS lines after the header, before anything is parsed."""
+    lines = raw.count(b"\n") + (0 if raw.endswith(b"\n") else 1) - 1
+    if lines > MAX_COUNT_ROWS:
         raise InputError(
-            f"{where} file is {size / 1024**2:.1f} MB; files over "
-            f"{MAX_FILE_BYTES // 1024**2} MB are refused (is it the right file?)",
+            f"{where} file has {lines} lines after the header, above the limit of "
+            f"{MAX_COUNT_ROWS} data rows (field counts are a small table; a fit to more "
+            "would run for minutes)",
             source=source,
         )
-    try:
-        return path.read_bytes()
-    except OSError as error:
-        raise InputError(f"{where} file cannot be read ({error.strerror})", source=source) from None
+
+
+def check_file(path: Path | str, where: str = "counts") -> None:
+    """Check, without parsing, that a counts file can be read: regular, within the limits."""
+    _read_bytes(Path(path), where)
 
 
 def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[tuple[int, list]]]:
@@ -214,6 +219,8 @@ def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[t
             source=source,
             where="line 1",
         )
+    import pandas as pd  # loaded on first use: a refused case never needs it
+
     delimiter = max(_DELIMITERS, key=first_line.count)
     try:
         # Everything as text, blank lines kept, so that row i of the table is line i + 1.

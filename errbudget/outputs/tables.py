@@ -5,13 +5,26 @@ from __future__ import annotations
 import csv
 import io
 
+# A text cell starting with one of these is run as a formula by spreadsheet programs; a
+# leading apostrophe makes it plain text (OWASP "CSV injection" advice). Numbers are kept.
+FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def neutral(value):
+    """A CSV cell: None as empty, a text that a spreadsheet would run prefixed with ``'``."""
+    if value is None:
+        return ""
+    if isinstance(value, str) and value.startswith(FORMULA_START):
+        return "'" + value
+    return value
+
 
 def _csv(header: list[str], rows: list[list]) -> str:
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(header)
     for row in rows:
-        writer.writerow(["" if value is None else value for value in row])
+        writer.writerow([neutral(value) for value in row])
     return buffer.getvalue()
 
 
