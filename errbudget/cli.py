@@ -124,7 +124,9 @@ def _main(arguments: list[str]) -> int:
             )
         from errbudget.case.load import load_case
 
-        cases = [load_case(path) for path in args.cases]  # all valid before anything runs
+        samples = getattr(args, "samples", None)
+        # All valid before anything runs; --samples checked against each design as it loads.
+        cases = [load_case(path, samples=samples) for path in args.cases]
         if args.command == "check":
             from errbudget.case.load import describe
 

@@ -20,8 +20,8 @@ from pathlib import Path
 
 import numpy as np
 
-from errbudget.case.limits import MAX_COUNT_ROWS, MAX_COUNTS_BYTES
-from errbudget.case.reader import read_regular_file
+from errbudget.case.limits import MAX_COUNT_ROWS, MAX_COUNTS_BYTES, MAX_MAGNITUDE
+from errbudget.case.reader import count_lines, read_regular_file
 from errbudget.errors import InputError, did_you_mean
 
 MAX_FILE_BYTES = MAX_COUNTS_BYTES  # the name the tests and older callers use
@@ -175,25 +175,30 @@ def read_counts(
 def _read_bytes(path: Path, where: str) -> bytes:
     """The whole file, after checking it is a regular file within the size and row limits."""
     raw = read_regular_file(path, MAX_FILE_BYTES, f"{where} file")
-    _check_rows(raw, str(path), where)
+    _check_rows(raw.count(b"\n"), str(path), where)
     return raw
 
 
-def _check_rows(raw: bytes, source: str, where: str) -> None:
-    """Refuse more than MAX_COUNT_ROWS lines after the header, before anything is parsed."""
-    lines = raw.count(b"\n") + (0 if raw.endswith(b"\n") else 1) - 1
-    if lines > MAX_COUNT_ROWS:
+def _check_rows(line_feeds: int, source: str, where: str) -> None:
+    """Refuse more than MAX_COUNT_ROWS lines after the header, before anything is parsed.
+
+    ``line_feeds`` counts the header's own; a last line without one is not counted, which
+    errs by one row on the lenient side.
+    """
+    if line_feeds - 1 > MAX_COUNT_ROWS:
         raise InputError(
-            f"{where} file has {lines} lines after the header, above the limit of "
-            f"{MAX_COUNT_ROWS} data rows (field counts are a small table; a fit to more "
-            "would run for minutes)",
+            f"{where} file has more than {MAX_COUNT_ROWS} lines after the header, the limit of "
+            "data rows (field counts are a small table; a fit to more would run for minutes)",
             source=source,
         )
 
 
 def check_file(path: Path | str, where: str = "counts") -> None:
-    """Check, without parsing, that a counts file can be read: regular, within the limits."""
-    _read_bytes(Path(path), where)
+    """Check, without parsing or holding it, that a counts file can be read: a regular file
+    within the size and row limits (the lines are counted only up to the limit)."""
+    path = Path(path)
+    line_feeds = count_lines(path, MAX_FILE_BYTES, f"{where} file", MAX_COUNT_ROWS + 1)
+    _check_rows(line_feeds, str(path), where)
 
 
 def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[tuple[int, list]]]:
@@ -289,6 +294,13 @@ def _number(cell: str, source: str, where: str, expected: str = "a number") -> f
         raise InputError(f'"{cell}" is not {expected}', source=source, where=where) from None
     if not math.isfinite(value):
         raise InputError(f'"{cell}" is not a finite number', source=source, where=where)
+    if abs(value) > MAX_MAGNITUDE:
+        raise InputError(
+            f'"{cell}" is beyond the limit of {MAX_MAGNITUDE:g} in absolute value (a number '
+            "this large is a typo or would overflow)",
+            source=source,
+            where=where,
+        )
     return value
 
 

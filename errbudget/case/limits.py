@@ -8,12 +8,8 @@ whatever a case file or an option says.
 
 # --- files
 MAX_CASE_BYTES = 1_000_000  # a case file is a few kilobytes; refuse anything absurd
-MAX_COUNTS_BYTES = (
-    20 * 1024 * 1024
-)  # field counts are small tables; anything larger is a wrong file
-MAX_COUNT_ROWS = (
-    10_000  # data rows of a counts file: daily counts for 27 years; a fit of more is minutes
-)
+MAX_COUNTS_BYTES = 20 * 1024 * 1024  # counts are small tables; a larger file is a wrong file
+MAX_COUNT_ROWS = 10_000  # data rows of a counts file: daily counts for 27 years
 
 # --- the case
 MIN_SAMPLES = 16  # smallest Sobol base sample (see uncertainty.spread.MIN_BASE_SAMPLES)
@@ -22,15 +18,14 @@ MAX_FINEST_STEPS = 2**19  # steps of the finest refinement level at most, whatev
 # Parameter sets of the Saltelli design, samples x (groups + 2): 2**20 is 3.2 times the
 # 65,536-sample benchmark run of three inputs (327,680 rows, 1.1 GB peak, benchmarks/results.md).
 MAX_DESIGN_ROWS = 2**20
-# Design rows x quantities: per-member results are kept for every row and quantity (about 43
-# float64 each over the ladder and candidate levels), so 2**22 of them stay near 1.4 GB.
-MAX_DESIGN_CELLS = 2**22
+# Design rows x quantities, the per-member results kept through the run: measured, 655,360 rows
+# x 2 quantities (crayfish pond, --samples 131072) peaked at 2.0 GB; 2**21 is 1.6 times that,
+# about 3.2 GB scaled linearly, under the default [budget] memory_limit of 4096 MB.
+MAX_DESIGN_CELLS = 2**21
 
 # --- quantity strings ("7 day", "0.06 / day", "mussel / m**2")
 MAX_QUANTITY_TEXT = 200  # characters in one quantity or unit string
-MAX_UNIT_EXPONENT = (
-    12  # largest |exponent| after ** (units need 1 to 3; 10**12 is the most written out)
-)
+MAX_UNIT_EXPONENT = 12  # largest |exponent| after **: units need 1 to 3, 10**12 is plenty
 MAX_NESTING = 4  # parentheses inside parentheses
 MAX_MAGNITUDE = 1e100  # largest |number| in internal units: products of two such stay finite
 

@@ -94,13 +94,17 @@ class Case:
         return {name: p.dist for name, p in self.parameters.items() if p.dist is not None}
 
 
-def load_case(path: str | Path) -> Case:
+def load_case(path: str | Path, *, samples: int | None = None) -> Case:
     """Read, validate and convert a case file.
 
     Parameters
     ----------
     path : str or Path
         The TOML case file.
+    samples : int, optional
+        A base sample size that will replace ``[budget] samples`` in the run (the command
+        line's ``--samples``): checked against the design limits with the case's own, before
+        anything else in the file is parsed.
 
     Returns
     -------
@@ -127,7 +131,7 @@ def load_case(path: str | Path) -> Case:
         raise reader.fail("invalid TOML: nested too deeply") from None
 
     reader.table(data, "", TOP_KEYS)
-    check_resources(reader, data)
+    check_resources(reader, data, samples)
     title = reader.text(data, "title", "", default="untitled case")
 
     model_table = reader.table(reader.required(data, "model", ""), "model", MODEL_KEYS)

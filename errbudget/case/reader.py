@@ -34,12 +34,13 @@ def _check_size(size: int, limit: int, what: str, source: str) -> None:
         )
 
 
-def read_regular_file(path: Path, limit: int, what: str) -> bytes:
-    """The bytes of a regular file of at most ``limit`` bytes, or an InputError naming it.
+def _chunks(path: Path, limit: int, what: str):
+    """The bytes of a regular file of at most ``limit`` bytes, in chunks, after the checks.
 
     A device, a named pipe or a socket is refused before it is opened (reading one may
     block forever or never end), and checked again on the open descriptor; at most
-    ``limit + 1`` bytes are read even if the file grows meanwhile.
+    ``limit + 1`` bytes are read even if the file grows meanwhile. Every fault is an
+    InputError naming the file.
     """
     source = str(path)
     try:
@@ -59,19 +60,38 @@ def read_regular_file(path: Path, limit: int, what: str) -> bytes:
         if not stat.S_ISREG(info.st_mode):
             raise InputError(f"{what} is not a regular file ({_kind_of(info.st_mode)})", source)
         _check_size(info.st_size, limit, what, source)
-        chunks, size = [], 0
+        size = 0
         while size <= limit:
             chunk = os.read(handle, min(1 << 20, limit + 1 - size))
             if not chunk:
                 break
-            chunks.append(chunk)
             size += len(chunk)
+            yield chunk
+        _check_size(size, limit, what, source)  # the file may have grown since fstat
     except OSError as error:
         raise InputError(f"{what} cannot be read ({error.strerror})", source) from None
     finally:
         os.close(handle)
-    _check_size(size, limit, what, source)  # the file may have grown since fstat
-    return b"".join(chunks)
+
+
+def read_regular_file(path: Path, limit: int, what: str) -> bytes:
+    """The bytes of a regular file of at most ``limit`` bytes, or an InputError naming it."""
+    return b"".join(_chunks(path, limit, what))
+
+
+def count_lines(path: Path, limit: int, what: str, most: int) -> int:
+    """Line feeds in a regular file of at most ``limit`` bytes, read in chunks and never
+    held whole; counting stops as soon as there are more than ``most``."""
+    count = 0
+    chunks = _chunks(path, limit, what)
+    try:
+        for chunk in chunks:
+            count += chunk.count(b"\n")
+            if count > most:
+                break
+    finally:
+        chunks.close()
+    return count
 
 
 class CaseReader:

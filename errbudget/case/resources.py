@@ -37,11 +37,12 @@ def counts_path(reader, table: dict) -> Path:
     return resolved
 
 
-def check_resources(reader, data: dict) -> None:
+def check_resources(reader, data: dict, samples: int | None = None) -> None:
     """The resource limits, on the raw tables, before any value is parsed or converted.
 
     A case beyond a limit is refused here, before anything is allocated or loaded for it:
-    the number of quantities, the design size from ``[budget] samples`` and the counts file.
+    the number of quantities, the counts file, and the design size from ``[budget] samples``
+    and from ``samples`` (the command line's ``--samples``) when given.
     """
     entries = data.get("quantity")
     quantities = len(entries) if isinstance(entries, list) else 1
@@ -52,19 +53,21 @@ def check_resources(reader, data: dict) -> None:
             "quantity",
         )
     counts = data.get("counts")
-    fit = counts.get("fit") if isinstance(counts, dict) else None
     if isinstance(counts, dict) and "file" in counts:
         counts_path(reader, counts)
-    budget = data.get("budget")
-    samples = budget.get("samples") if isinstance(budget, dict) else None
     parameters = data.get("parameters")
-    if isinstance(samples, int) and not isinstance(samples, bool) and isinstance(parameters, dict):
-        uncertain = {name for name, entry in parameters.items() if isinstance(entry, dict)}
-        fitted = (
-            set(fit) if isinstance(fit, list) and all(isinstance(n, str) for n in fit) else None
-        )
-        groups = design_groups_of(uncertain, fitted)
-        check_design(samples, groups, quantities, reader.source, "budget.samples")
+    if not isinstance(parameters, dict):
+        return  # refused later, with the reason
+    fit = counts.get("fit") if isinstance(counts, dict) else None
+    uncertain = {name for name, entry in parameters.items() if isinstance(entry, dict)}
+    listed = isinstance(fit, list) and all(isinstance(name, str) for name in fit)
+    groups = design_groups_of(uncertain, set(fit) if listed else None)
+    budget = data.get("budget")
+    own = budget.get("samples") if isinstance(budget, dict) else None
+    if isinstance(own, int) and not isinstance(own, bool):
+        check_design(own, groups, quantities, reader.source, "budget.samples")
+    if samples is not None:
+        check_design(samples, groups, quantities, "command line", f"--samples, for {reader.path}")
 
 
 def design_groups_of(uncertain: set[str], fitted: set[str] | None) -> int:

@@ -44,10 +44,11 @@ def check_stem(stem: str, case_path: Path) -> None:
     """A case file's stem names its output folder: it must be one plain folder name."""
     plain = stem not in ("", ".", "..") and not any(ord(c) < 32 or c in "/\\\x7f" for c in stem)
     if not plain:
+        shown = "".join(repr(c)[1:-1] if ord(c) < 32 or c == "\x7f" else c for c in str(case_path))
         raise InputError(
             f"the file name gives the output folder name {stem!r}, which would not be a "
             "folder of its own inside --out; rename the case file",
-            str(case_path),
+            shown,  # control characters shown escaped: the message stays one line
         )
 
 
@@ -81,6 +82,8 @@ def check_output_folder(folder: Path) -> None:
         if path.is_dir() and not path.is_symlink():
             raise InputError("a folder is in the way of an output file", str(path))
     existing = next(p for p in (folder, *folder.parents) if p.exists())
+    if not existing.is_dir():
+        raise InputError("a file is in the way where a folder of --out should be", str(existing))
     if not os.access(existing, os.W_OK | os.X_OK):
         cause = "the file system is read-only" if _read_only(existing) else "permission denied"
         raise InputError(f"cannot write the outputs here: {cause}", str(existing))

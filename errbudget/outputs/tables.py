@@ -11,12 +11,18 @@ FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
 def neutral(value):
-    """A CSV cell: None as empty, a text that a spreadsheet would run prefixed with ``'``."""
+    """A CSV cell: None as empty, a text that a spreadsheet would run prefixed with ``'``.
+
+    A carriage return inside a text becomes a line feed: the writer quotes a cell holding
+    its line terminator ("\n") but not a lone "\r", which readers take for a row's end.
+    """
     if value is None:
         return ""
-    if isinstance(value, str) and value.startswith(FORMULA_START):
-        return "'" + value
-    return value
+    if not isinstance(value, str):
+        return value
+    if value.startswith(FORMULA_START):
+        value = "'" + value
+    return value.replace("\r\n", "\n").replace("\r", "\n")
 
 
 def _csv(header: list[str], rows: list[list]) -> str:
