@@ -122,9 +122,13 @@ def _main(arguments: list[str]) -> int:
             raise InputError(
                 "choose a command: run or check (see errbudget --help)", "command line"
             )
-        from errbudget.case.load import load_case
+        from errbudget.case.resources import precheck_case
 
         samples = getattr(args, "samples", None)
+        for path in args.cases:  # the limits first, before the rest of the package loads
+            precheck_case(path, samples)
+        from errbudget.case.load import load_case
+
         # All valid before anything runs; --samples checked against each design as it loads.
         cases = [load_case(path, samples=samples) for path in args.cases]
         if args.command == "check":

@@ -354,6 +354,11 @@ def test_catalogue_case_file_refused_naming_key_and_limit(capsys, tmp_path, entr
         for fragment in entry.says:
             assert fragment in line, (fragment, line)
     assert not (tmp_path / "out").exists()
+    # The loader refuses it too (the command line checks limits and strings before loading).
+    with pytest.raises(InputError) as refused:
+        load_case(path)
+    assert refused.value.source == str(path)
+    assert all(fragment in refused.value.message for fragment in entry.says), refused.value
 
 
 # --------------------------------------------------------------------- 1. arithmetic
@@ -414,6 +419,20 @@ def test_samples_option_beyond_this_case_design_refused_before_running(capsys, t
     assert line.startswith(f"errbudget: error: command line, --samples, for {POND}: ")
     assert "1310720 parameter sets (262144 x 5)" in line and "use samples = 131072" in line
     assert list(tmp_path.iterdir()) == []
+
+
+def test_a_refusal_beyond_a_limit_loads_neither_numpy_nor_pint(tmp_path):
+    # The command line checks the limits and the quantity strings with the light modules
+    # (case.files, case.resources, case.quantity_text) before the rest is imported.
+    tower = _write(tmp_path, _edit(BUILTIN, 'step = "7 day"', 'step = "9**9**9 day"'), "t.toml")
+    many = _write(tmp_path, _edit(BUILTIN, "samples = 64", f"samples = {2**40}"), "m.toml")
+    probe = (
+        "import sys; from errbudget.cli import main; "
+        f"codes = [main(['check', {str(tower)!r}]), main(['check', {str(many)!r}])]; "
+        "print(codes, sorted(m for m in ('numpy', 'pint', 'scipy') if m in sys.modules))"
+    )
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=60)
+    assert done.stdout.strip() == "[2, 2] []", done.stdout + done.stderr
 
 
 def _fifo(tmp_path: Path, name: str) -> Path:
@@ -495,7 +514,7 @@ def test_counts_file_at_the_row_limit_is_accepted_and_one_more_row_refused(tmp_p
 
 
 def test_counts_file_of_20_mb_is_refused_after_reading_only_its_start(tmp_path, monkeypatch):
-    import errbudget.case.reader as reader
+    import errbudget.case.files as reader
 
     path = tmp_path / "counts.csv"
     path.write_bytes(b"day,count\n" + b"1,2\n" * (limits.MAX_COUNTS_BYTES // 4 - 3))

@@ -20,8 +20,9 @@ from pathlib import Path
 
 import numpy as np
 
-from errbudget.case.limits import MAX_COUNT_ROWS, MAX_COUNTS_BYTES, MAX_MAGNITUDE
-from errbudget.case.reader import count_lines, read_regular_file
+from errbudget.case.files import read_regular_file
+from errbudget.case.limits import MAX_COUNTS_BYTES, MAX_MAGNITUDE
+from errbudget.case.resources import check_count_rows, check_counts_file
 from errbudget.errors import InputError, did_you_mean
 
 MAX_FILE_BYTES = MAX_COUNTS_BYTES  # the name the tests and older callers use
@@ -175,30 +176,14 @@ def read_counts(
 def _read_bytes(path: Path, where: str) -> bytes:
     """The whole file, after checking it is a regular file within the size and row limits."""
     raw = read_regular_file(path, MAX_FILE_BYTES, f"{where} file")
-    _check_rows(raw.count(b"\n"), str(path), where)
+    check_count_rows(raw.count(b"\n"), str(path), where)
     return raw
-
-
-def _check_rows(line_feeds: int, source: str, where: str) -> None:
-    """Refuse more than MAX_COUNT_ROWS lines after the header, before anything is parsed.
-
-    ``line_feeds`` counts the header's own; a last line without one is not counted, which
-    errs by one row on the lenient side.
-    """
-    if line_feeds - 1 > MAX_COUNT_ROWS:
-        raise InputError(
-            f"{where} file has more than {MAX_COUNT_ROWS} lines after the header, the limit of "
-            "data rows (field counts are a small table; a fit to more would run for minutes)",
-            source=source,
-        )
 
 
 def check_file(path: Path | str, where: str = "counts") -> None:
     """Check, without parsing or holding it, that a counts file can be read: a regular file
-    within the size and row limits (the lines are counted only up to the limit)."""
-    path = Path(path)
-    line_feeds = count_lines(path, MAX_FILE_BYTES, f"{where} file", MAX_COUNT_ROWS + 1)
-    _check_rows(line_feeds, str(path), where)
+    within the size and row limits (see :func:`errbudget.case.resources.check_counts_file`)."""
+    check_counts_file(Path(path), where)
 
 
 def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[tuple[int, list]]]:

@@ -15,9 +15,10 @@ from pathlib import Path
 import numpy as np
 
 from errbudget.case.distributions import Distribution
+from errbudget.case.files import read_regular_file
 from errbudget.case.limits import MAX_CASE_BYTES, MAX_FINEST_STEPS, MIN_SAMPLES, is_design_size
 from errbudget.case.parameters import Parameter, builtin_parameters, custom_model
-from errbudget.case.reader import CaseReader, read_regular_file
+from errbudget.case.reader import CaseReader
 from errbudget.case.resources import check_design_size, check_resources, counts_path
 from errbudget.case.units import (
     check_population_unit,
@@ -131,7 +132,7 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
         raise reader.fail("invalid TOML: nested too deeply") from None
 
     reader.table(data, "", TOP_KEYS)
-    check_resources(reader, data, samples)
+    check_resources(path, data, samples)
     title = reader.text(data, "title", "", default="untitled case")
 
     model_table = reader.table(reader.required(data, "model", ""), "model", MODEL_KEYS)
@@ -375,7 +376,7 @@ def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
     if table is None:
         return None
     table = reader.table(table, "counts", COUNTS_KEYS)
-    resolved = counts_path(reader, table)
+    resolved = counts_path(reader.path, reader.text(table, "file", "counts"))
     file_unit = _time_quantity(
         reader, "1 " + reader.text(table, "time_unit", "counts", default="day"), "counts.time_unit"
     )
