@@ -192,20 +192,3 @@ class Grammar:
         if not math.isfinite(value):
             raise self.fail("is not a finite number (it is beyond the range of a float)")
         return value
-
-
-def check_text(text: str, where: str | None = None) -> str:
-    """Check a quantity or unit string against the grammar above.
-
-    Returns
-    -------
-    str
-        The same expression with every operator explicit (a space becomes ``*``, ``^``
-        becomes ``**``), which is what pint is given.
-
-    Raises
-    ------
-    InputError
-        Naming the limit that was exceeded or what is accepted.
-    """
-    return Grammar(text, where).check()[0]
