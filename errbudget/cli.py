@@ -1,4 +1,9 @@
-"""The command line: ``errbudget run`` and ``errbudget check``. Thin: the work is elsewhere."""
+"""The command line: ``errbudget run`` and ``errbudget check``. Thin: the work is elsewhere.
+
+Every problem the user can fix -- a bad case, a bad option, an output folder that cannot be
+written -- ends with exit code 2 and one line on stderr naming the file (or option) and the
+cause; Python warnings are recorded, not shown (``--debug-traceback`` shows them).
+"""
 
 from __future__ import annotations
 
@@ -13,11 +18,23 @@ from errbudget.errors import InputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT = 0, 1, 2
 DEFAULT_OUT = "reports"
+DEBUG_FLAG = "--debug-traceback"
+MIN_DESIGN_BLOCK = 3  # rows per base sample with one uncertain input (groups + 2)
 
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str):  # bad options are bad input: exit code 2, one line
         raise InputError(message, "command line")
+
+
+def _debug_option(parser: argparse.ArgumentParser, default) -> None:
+    parser.add_argument(
+        DEBUG_FLAG,
+        dest="debug_traceback",
+        action="store_true",
+        default=default,
+        help="on an internal error, print the Python traceback and the recorded warnings",
+    )
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -29,6 +46,7 @@ def build_parser() -> argparse.ArgumentParser:
         ),
     )
     parser.add_argument("--version", action="store_true", help="print the version and stop")
+    _debug_option(parser, False)
     commands = parser.add_subparsers(dest="command", parser_class=_Parser)
     run = commands.add_parser("run", help="compute the error budget of each case")
     run.add_argument("cases", nargs="+", metavar="CASE", type=Path)
@@ -50,16 +68,24 @@ def build_parser() -> argparse.ArgumentParser:
     )
     check = commands.add_parser("check", help="validate cases and print what they resolve to")
     check.add_argument("cases", nargs="+", metavar="CASE", type=Path)
+    for sub in (run, check):  # SUPPRESS: a flag given before the command is kept
+        _debug_option(sub, argparse.SUPPRESS)
     return parser
 
 
 def _design_size(text: str) -> int:
-    from errbudget.case.load import MIN_SAMPLES, is_design_size
+    from errbudget.case.limits import MAX_DESIGN_ROWS, MIN_SAMPLES, is_design_size
 
     value = _non_negative_int(text)
     if not is_design_size(value):
         raise argparse.ArgumentTypeError(
             f"expected a power of two of at least {MIN_SAMPLES} such as 512 or 1024, got {text!r}"
+        )
+    if value * MIN_DESIGN_BLOCK > MAX_DESIGN_ROWS:
+        raise argparse.ArgumentTypeError(
+            f"{value} would make a design of at least {value * MIN_DESIGN_BLOCK} parameter sets, "
+            f"above the limit of {MAX_DESIGN_ROWS}; use "
+            f"{1 << ((MAX_DESIGN_ROWS // MIN_DESIGN_BLOCK).bit_length() - 1)} or fewer"
         )
     return value
 
@@ -75,8 +101,23 @@ def _non_negative_int(text: str) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
+    arguments = sys.argv[1:] if argv is None else list(argv)
+    with warnings.catch_warnings(record=True) as recorded:
+        # Warnings (numpy overflow in a figure, numba notes) are not for the user: the run
+        # turns what matters into flags and nulls in budget.json.
+        warnings.simplefilter("default")
+        status = _main(arguments)
+    if DEBUG_FLAG in arguments:
+        for item in recorded:
+            text = warnings.formatwarning(item.message, item.category, item.filename, item.lineno)
+            print(f"errbudget: debug: {text}", end="", file=sys.stderr)
+    return status
+
+
+def _main(arguments: list[str]) -> int:
+    debug = DEBUG_FLAG in arguments
     try:
-        args = build_parser().parse_args(argv)
+        args = build_parser().parse_args(arguments)
         if args.version:
             from errbudget.version import package_version
 
@@ -86,17 +127,24 @@ def main(argv: list[str] | None = None) -> int:
             raise InputError(
                 "choose a command: run or check (see errbudget --help)", "command line"
             )
+        from errbudget.case.resources import precheck_case
+
+        samples = getattr(args, "samples", None)
+        for path in args.cases:  # the limits first, before the rest of the package loads
+            precheck_case(path, samples)
         from errbudget.case.load import load_case
 
-        cases = [load_case(path) for path in args.cases]  # all valid before anything runs
+        # All valid before anything runs; --samples checked against each design as it loads.
+        cases = [load_case(path, samples=samples) for path in args.cases]
         if args.command == "check":
             from errbudget.case.load import describe
 
             for case in cases:
                 print(describe(case))
             return EXIT_OK
-        for case in cases:
-            _run_one(case, args)
+        folders = _check_run(cases, args)  # before anything runs
+        for case, folder in zip(cases, folders, strict=True):
+            _run_one(case, folder, args)
         return EXIT_OK
     except InputError as error:
         print(f"errbudget: error: {error.format()}", file=sys.stderr)
@@ -104,11 +152,51 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("errbudget: interrupted; earlier outputs are untouched", file=sys.stderr)
         return EXIT_INTERNAL
+    except MemoryError:
+        print(
+            "errbudget: error: not enough memory for this run; lower [budget] samples or "
+            "--samples, or shorten the horizon",
+            file=sys.stderr,
+        )
+        return EXIT_INPUT
+    except OSError as error:  # the environment (a file, a folder, the disk), not the code
+        from errbudget.outputs.files import environment_error
+
+        place = error.filename or "a file or folder of this run"
+        message = environment_error(error, place, "use this file or folder").format()
+        print(f"errbudget: error: {message}", file=sys.stderr)
+        if debug:
+            traceback.print_exc()
+        return EXIT_INPUT
     except Exception as error:  # report, never a bare traceback for the user
         print(f"errbudget: internal error: {type(error).__name__}: {error}", file=sys.stderr)
-        if "--debug-traceback" in (argv or sys.argv):
+        if debug:
             traceback.print_exc()
         return EXIT_INTERNAL
+
+
+def _check_run(cases, args) -> list[Path]:
+    """Everything ``run`` can check before running: the design size of ``--samples``, the
+    output folder of each case (its name, links, files in the way, write access), and
+    that no two cases would write into the same folder."""
+    from errbudget.case.resources import check_design_size
+    from errbudget.outputs.files import check_output_folder, check_stem
+
+    folders: dict[Path, Path] = {}
+    for case in cases:
+        if args.samples is not None:
+            check_design_size(case, args.samples, "command line", f"--samples, for {case.path}")
+        check_stem(case.path.stem, case.path)
+        folder = args.out / case.path.stem
+        if folder in folders:
+            raise InputError(
+                f"{folders[folder]} and {case.path} would both write into {folder}; "
+                "give the case files different names (or run them with different --out)",
+                "command line",
+            )
+        check_output_folder(folder)
+        folders[folder] = case.path
+    return list(folders)
 
 
 def _progress(quiet: bool, title: str):
@@ -148,7 +236,7 @@ class _Notice:
         return None
 
 
-def _run_one(case, args) -> None:
+def _run_one(case, folder: Path, args) -> None:
     from errbudget.budget.run import run_case
     from errbudget.outputs import history
     from errbudget.outputs.files import dumps, write_all_atomic
@@ -157,17 +245,13 @@ def _run_one(case, args) -> None:
 
     progress = _progress(args.quiet, case.path.stem)
     try:
-        with warnings.catch_warnings():
-            # numpy's warnings on NaN or overflow are expected here: the run turns them into
-            # flags and nulls in budget.json, so they are not shown to the user.
-            warnings.simplefilter("ignore", RuntimeWarning)
-            budget = run_case(
-                case,
-                samples=args.samples,
-                seed=args.seed,
-                progress=progress,
-                patient=args.patient,
-            )
+        budget = run_case(
+            case,
+            samples=args.samples,
+            seed=args.seed,
+            progress=progress,
+            patient=args.patient,
+        )
     except InputError as error:
         # A problem found while running (counts the observation model cannot describe) that
         # names no file lies in the counts the run read, or else in the case.
@@ -179,7 +263,6 @@ def _run_one(case, args) -> None:
     data = budget.to_dict()
     timestamp = datetime.now(UTC).isoformat(timespec="seconds")
     data["run"]["timestamp"] = timestamp
-    folder = args.out / case.path.stem
     with history.locked(folder):
         line = history.entry(data, timestamp, series=budget.series)
         data["since_last"] = history.compare(history.last_entry(folder), line)

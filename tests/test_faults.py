@@ -185,8 +185,9 @@ def test_failed_write_leaves_the_earlier_set(capsys, tmp_path, monkeypatch, fail
         return real(*args, **kwargs)
 
     monkeypatch.setattr(errbudget.outputs.files.tempfile, "mkstemp", flaky)
-    assert main(["run", str(case), "--out", str(out), *QUICK]) == 1
-    capsys.readouterr()
+    # A full disk is a fault of the environment: exit code 2 and one line naming the file.
+    assert main(["run", str(case), "--out", str(out), *QUICK]) == EXIT_INPUT
+    assert "the disk is full" in _one_error_line(capsys)
     _assert_unchanged(out / "pond", before)  # also: no temporary left behind
 
 
@@ -200,8 +201,9 @@ def test_failed_rename_leaves_the_earlier_set(capsys, tmp_path, monkeypatch):
         return real(src, dst)
 
     monkeypatch.setattr(errbudget.outputs.files.os, "replace", broken_second)
-    assert main(["run", str(case), "--out", str(out), *QUICK]) == 1
-    capsys.readouterr()
+    assert main(["run", str(case), "--out", str(out), *QUICK]) == EXIT_INPUT
+    line = _one_error_line(capsys)
+    assert "budget.html" in line and "input/output error" in line
     # budget.json is renamed first in the set, so it may be new; this is the documented
     # window of write_all_atomic. The history is appended only after all renames.
     after = {p.name: p.read_bytes() for p in (out / "pond").iterdir()}

@@ -20,6 +20,8 @@ from errbudget.budget.passes import Candidates, Ensemble, ReferencePass
 from errbudget.budget.progress import Progress, as_progress
 from errbudget.budget.search import recommend
 from errbudget.case.load import Case
+from errbudget.case.parameters import input_flags
+from errbudget.case.resources import check_design_size
 from errbudget.errors import InputError
 from errbudget.estimates import artefacts, ladder, roundoff, stability
 from errbudget.estimates.drivers import drivers
@@ -102,10 +104,12 @@ def run_case(
     """
     receiver = as_progress(progress)
     clock = _Clock(receiver)
+    if samples is not None:  # [budget] samples was checked at load, an override is not yet
+        check_design_size(case, samples, "run_case", "samples")
     n_base = samples if samples is not None else case.budget.samples
     seed = seed if seed is not None else case.budget.seed
     scheme = get_scheme(case.scheme)
-    flags: list[dict] = []
+    flags: list[dict] = input_flags(case.parameters)
 
     independent, joint = case.uncertain(), None
     if case.counts is not None:

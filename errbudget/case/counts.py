@@ -19,11 +19,13 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
+from errbudget.case.files import read_regular_file
+from errbudget.case.limits import MAX_COUNTS_BYTES, MAX_MAGNITUDE
+from errbudget.case.resources import check_count_rows, check_counts_file
 from errbudget.errors import InputError, did_you_mean
 
-MAX_FILE_BYTES = 20 * 1024 * 1024  # field counts are small tables; anything larger is a wrong file
+MAX_FILE_BYTES = MAX_COUNTS_BYTES  # the name the tests and older callers use
 MIN_ROWS = 3  # fewest counts a growth-curve fit can use (two parameters plus the start value)
 SECONDS_PER_DAY = 86400.0
 # Cell texts read as "no value recorded" rather than as a malformed number.
@@ -172,23 +174,16 @@ def read_counts(
 
 
 def _read_bytes(path: Path, where: str) -> bytes:
-    """The whole file, after checking it exists, is a file and is not too large."""
-    source = str(path)
-    if not path.exists():
-        raise InputError(f"{where} file not found", source=source)
-    if not path.is_file():
-        raise InputError(f"{where} file is not a regular file", source=source)
-    size = path.stat().st_size
-    if size > MAX_FILE_BYTES:
-        raise InputError(
-            f"{where} file is {size / 1024**2:.1f} MB; files over "
-            f"{MAX_FILE_BYTES // 1024**2} MB are refused (is it the right file?)",
-            source=source,
-        )
-    try:
-        return path.read_bytes()
-    except OSError as error:
-        raise InputError(f"{where} file cannot be read ({error.strerror})", source=source) from None
+    """The whole file, after checking it is a regular file within the size and row limits."""
+    raw = read_regular_file(path, MAX_FILE_BYTES, f"{where} file")
+    check_count_rows(raw.count(b"\n"), str(path), where)
+    return raw
+
+
+def check_file(path: Path | str, where: str = "counts") -> None:
+    """Check, without parsing or holding it, that a counts file can be read: a regular file
+    within the size and row limits (see :func:`errbudget.case.resources.check_counts_file`)."""
+    check_counts_file(Path(path), where)
 
 
 def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[tuple[int, list]]]:
@@ -214,6 +209,8 @@ def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[t
             source=source,
             where="line 1",
         )
+    import pandas as pd  # loaded on first use: a refused case never needs it
+
     delimiter = max(_DELIMITERS, key=first_line.count)
     try:
         # Everything as text, blank lines kept, so that row i of the table is line i + 1.
@@ -282,6 +279,13 @@ def _number(cell: str, source: str, where: str, expected: str = "a number") -> f
         raise InputError(f'"{cell}" is not {expected}', source=source, where=where) from None
     if not math.isfinite(value):
         raise InputError(f'"{cell}" is not a finite number', source=source, where=where)
+    if abs(value) > MAX_MAGNITUDE:
+        raise InputError(
+            f'"{cell}" is beyond the limit of {MAX_MAGNITUDE:g} in absolute value (a number '
+            "this large is a typo or would overflow)",
+            source=source,
+            where=where,
+        )
     return value
 
 

@@ -11,7 +11,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 KINDS = ("normal", "lognormal", "uniform", "triangular", "truncated-normal")
 
@@ -34,6 +33,9 @@ class Distribution:
         for the last) [same unit].
     mode : float
         Mode of ``triangular`` [same unit].
+    truncated_share : float
+        For a normal truncated at zero by the loader (a parameter that must be positive):
+        the share of the normal as written that lay at or below zero [1]; 0 otherwise.
     """
 
     kind: str
@@ -42,9 +44,12 @@ class Distribution:
     low: float = -math.inf
     high: float = math.inf
     mode: float = math.nan
+    truncated_share: float = 0.0
 
     def frozen(self):
         """The equivalent frozen ``scipy.stats`` distribution."""
+        from scipy import stats  # loaded on first use: a refused case never needs it
+
         if self.kind == "normal":
             return stats.norm(loc=self.nominal, scale=self.sd)
         if self.kind == "lognormal":
@@ -89,7 +94,13 @@ class Distribution:
             return f"uniform on [{self.low:g}, {self.high:g}] {unit}"
         if self.kind == "triangular":
             return f"triangular, low {self.low:g}, mode {self.mode:g}, high {self.high:g} {unit}"
-        return (
+        text = (
             f"truncated normal, mean {self.nominal:g} {unit}, sd {self.sd:g} {unit}, "
             f"on [{self.low:g}, {self.high:g}] {unit}"
         )
+        if self.truncated_share > 0:
+            text += (
+                f" (truncated at zero: the normal as written put "
+                f"{100 * self.truncated_share:.3g} % of its draws at or below zero)"
+            )
+        return text

@@ -15,9 +15,17 @@ from pathlib import Path
 import numpy as np
 
 from errbudget.case.distributions import Distribution
-from errbudget.case.limits import LADDER_HALVINGS, MAX_FINEST_STEPS
+from errbudget.case.files import read_regular_file
+from errbudget.case.limits import (
+    LADDER_HALVINGS,
+    MAX_CASE_BYTES,
+    MAX_FINEST_STEPS,
+    MIN_SAMPLES,
+    is_design_size,
+)
 from errbudget.case.parameters import Parameter, builtin_parameters, custom_model
 from errbudget.case.reader import CaseReader
+from errbudget.case.resources import check_design_size, check_resources, counts_path
 from errbudget.case.units import (
     check_population_unit,
     ensure_count_units,
@@ -48,8 +56,6 @@ BUDGET_KEYS = (
 )
 COUNTS_KEYS = ("file", "time", "time_unit", "count", "error", "fit", "start")
 ERROR_MODELS = ("poisson", "negative-binomial", "lognormal", "normal")
-MAX_CASE_BYTES = 1_000_000  # a case file is a few kilobytes; refuse anything absurd
-MIN_SAMPLES = 16  # smallest Sobol base sample (see spread.MIN_BASE_SAMPLES)
 DEFAULT_MEMORY_LIMIT_MB = 4096  # resource ceiling for one run, overridable per case
 DEFAULT_TIME_LIMIT_S = 60.0  # a run predicted to take longer is refused unless asked for
 HALF_AN_INDIVIDUAL = 0.5  # default resolution of a count [individuals]
@@ -112,13 +118,17 @@ class Case:
         return {name: p.dist for name, p in self.parameters.items() if p.dist is not None}
 
 
-def load_case(path: str | Path) -> Case:
+def load_case(path: str | Path, *, samples: int | None = None) -> Case:
     """Read, validate and convert a case file.
 
     Parameters
     ----------
     path : str or Path
         The TOML case file.
+    samples : int, optional
+        A base sample size that will replace ``[budget] samples`` in the run (the command
+        line's ``--samples``): checked against the design limits with the case's own, before
+        anything else in the file is parsed.
 
     Returns
     -------
@@ -131,16 +141,10 @@ def load_case(path: str | Path) -> Case:
     """
     path = Path(path)
     reader = CaseReader(path)
+    raw_bytes = read_regular_file(path, MAX_CASE_BYTES, "case file")
     try:
-        raw_bytes = path.read_bytes()
-    except FileNotFoundError:
-        raise reader.fail("case file not found") from None
-    except OSError as error:
-        raise reader.fail(f"cannot read the case file ({error.strerror})") from None
-    if len(raw_bytes) > MAX_CASE_BYTES:
-        raise reader.fail(f"case file is larger than {MAX_CASE_BYTES} bytes")
-    try:
-        text = raw_bytes.decode("utf-8")
+        # A byte-order mark at the start (some editors on Windows write one) is not TOML.
+        text = raw_bytes.decode("utf-8-sig")
     except UnicodeDecodeError:
         raise reader.fail("case file is not UTF-8 text") from None
     try:
@@ -151,6 +155,7 @@ def load_case(path: str | Path) -> Case:
         raise reader.fail("invalid TOML: nested too deeply") from None
 
     reader.table(data, "", TOP_KEYS)
+    check_resources(path, data, samples)
     title = reader.text(data, "title", "", default="untitled case")
 
     model_table = reader.table(reader.required(data, "model", ""), "model", MODEL_KEYS)
@@ -210,7 +215,7 @@ def load_case(path: str | Path) -> Case:
     budget = _budget(reader, data.get("budget", {}), population)
     counts = _counts(reader, data.get("counts"), time_unit, parameters)
 
-    return Case(
+    case = Case(
         title=title,
         path=path,
         text=text,
@@ -228,6 +233,8 @@ def load_case(path: str | Path) -> Case:
         budget=budget,
         counts=counts,
     )
+    check_design_size(case, budget.samples, str(path), "budget.samples")  # as checked raw
+    return case
 
 
 def _check_step_count(reader: CaseReader, step: float, horizon: float, time_unit) -> None:
@@ -333,11 +340,6 @@ def _budget(reader, table, population) -> BudgetSpec:
     return spec
 
 
-def is_design_size(samples: int) -> bool:
-    """Whether ``samples`` can be the base size of a Sobol design (a power of two >= 16)."""
-    return samples >= MIN_SAMPLES and not samples & (samples - 1)
-
-
 def _budget_values(reader, table) -> BudgetSpec:
     table = reader.table(table, "budget", BUDGET_KEYS)
     defaults = BudgetSpec()
@@ -431,18 +433,7 @@ def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
     if table is None:
         return None
     table = reader.table(table, "counts", COUNTS_KEYS)
-    file_text = reader.text(table, "file", "counts")
-    given = Path(file_text)
-    base = reader.path.resolve().parent
-    resolved = given if given.is_absolute() else (base / given).resolve()
-    if not given.is_absolute() and not resolved.is_relative_to(base):
-        raise reader.fail(
-            "a relative counts path must stay inside the case's folder; "
-            "give an absolute path to use a file elsewhere",
-            "counts.file",
-        )
-    if not resolved.is_file():
-        raise reader.fail(f"counts file {str(resolved)!r} not found (or not a file)", "counts.file")
+    resolved = counts_path(reader.path, reader.text(table, "file", "counts"))
     file_unit = _time_quantity(
         reader, "1 " + reader.text(table, "time_unit", "counts", default="day"), "counts.time_unit"
     )

@@ -8,9 +8,18 @@ parameter in the unit it was written in and checks the rate expression's units i
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+import warnings
+from dataclasses import dataclass, replace
+
+import numpy as np
 
 from errbudget.case.distributions import KINDS, Distribution
+from errbudget.case.limits import (
+    MAX_MAGNITUDE,
+    NEGLIGIBLE_TAIL,
+    NOTEWORTHY_TAIL,
+    SMALLEST_DESIGN_PROBABILITY,
+)
 from errbudget.case.units import format_unit, parse_quantity, ureg
 from errbudget.errors import InputError, did_you_mean
 from errbudget.laws import models
@@ -69,8 +78,8 @@ def builtin_parameters(reader, model, table, population, time_unit) -> dict[str,
         if name not in table:
             raise reader.fail(f"missing parameter {name!r} of the {model.form!r} law", where)
         kind = models.POPULATION if name == "N0" else model.kinds[name]
-        parameters[name] = _parameter(reader, name, table[name], units[kind], meanings[kind])
-        _check_sign(reader, parameters[name], where)
+        parameter = _parameter(reader, name, table[name], units[kind], meanings[kind])
+        parameters[name] = _check_sign(reader, parameter, where)
     return parameters
 
 
@@ -106,8 +115,8 @@ def custom_model(reader, rate_text, table, population, time_unit):
     except InputError as error:
         raise error.located(reader.source, "model.rate") from None
 
-    parameters = {"N0": _parameter(reader, "N0", table["N0"], population, "a population level")}
-    _check_sign(reader, parameters["N0"], "parameters.N0")
+    initial = _parameter(reader, "N0", table["N0"], population, "a population level")
+    parameters = {"N0": _check_sign(reader, initial, "parameters.N0")}
     for name in allowed:
         given_unit = _given_unit(reader, name, table[name])
         parameters[name] = _parameter(reader, name, table[name], given_unit, "this parameter")
@@ -229,6 +238,8 @@ def _parameter(reader, name, entry, unit, meaning) -> Parameter:
         sd = cv * abs(value)
     if sd is not None and sd <= 0:
         raise reader.fail("sd must be positive", f"{where}.sd")
+    if sd is not None and "cv" in entry:
+        reader.magnitude(sd, f"cv = {cv!r} of {value:g}", f"{where}.cv", unit)
 
     def need(*keys):
         for key, val in zip(
@@ -266,21 +277,95 @@ def _parameter(reader, name, entry, unit, meaning) -> Parameter:
         raise reader.fail("mode must lie between low and high", f"{where}.mode")
     if not dist.low <= dist.nominal <= dist.high:
         raise reader.fail("value must lie between low and high", f"{where}.value")
+    _check_draws(reader, dist, where, label)
     given = ", ".join(f"{k} = {v}" for k, v in entry.items())
     return Parameter(name, float(dist.nominal), label, given, dist, coherent)
 
 
-def _check_sign(reader, parameter: Parameter, where: str) -> None:
-    name = parameter.name
-    lowest = (
-        parameter.nominal
-        if parameter.dist is None
-        else min(
-            parameter.nominal,
-            parameter.dist.low if math.isfinite(parameter.dist.low) else parameter.nominal,
+def _draws(dist: Distribution) -> tuple[np.ndarray, float]:
+    """The smallest, middle and largest draw the design can make, and the spread."""
+    p = SMALLEST_DESIGN_PROBABILITY
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # scipy warns on extreme tails; the values are checked
+        return dist.ppf(np.array([p, 0.5, 1 - p])), dist.spread()
+
+
+def _check_draws(reader, dist: Distribution, where: str, unit: str) -> None:
+    """Every draw the design can make, and the spread, are finite numbers within the limit."""
+    edges, spread = _draws(dist)
+    finite = bool(np.all(np.isfinite(edges))) and math.isfinite(spread)
+    if not finite or float(np.max(np.abs(edges))) > MAX_MAGNITUDE:
+        shown = ", ".join(f"{x:g}" for x in edges)
+        raise reader.fail(
+            f"this {dist.kind} distribution draws values from {shown} {unit} (smallest, median, "
+            f"largest) with spread {spread:g}; every draw must be a finite number within "
+            f"{MAX_MAGNITUDE:g} in absolute value: check sd, cv, low and high",
+            where,
         )
-    )
-    if name in POSITIVE and lowest <= 0:
-        raise reader.fail(f"{POSITIVE[name]} must be positive, got {parameter.given}", where)
-    if name in NON_NEGATIVE and lowest < 0:
-        raise reader.fail(f"{NON_NEGATIVE[name]} cannot be negative, got {parameter.given}", where)
+
+
+def _check_sign(reader, parameter: Parameter, where: str) -> Parameter:
+    """The sign rules of :data:`POSITIVE` and :data:`NON_NEGATIVE`, on the whole support.
+
+    The nominal value and any bound given must obey the rule. A normal (or a normal bounded
+    only above) that puts at least :data:`NEGLIGIBLE_TAIL` of its draws at or below zero is
+    truncated at zero: those draws would be silently impossible members. The truncation is
+    said by ``check`` (see :meth:`Distribution.describe`) and kept in
+    ``Distribution.truncated_share``.
+    """
+    name = parameter.name
+    positive = name in POSITIVE
+    if not positive and name not in NON_NEGATIVE:
+        return parameter
+    rule = POSITIVE[name] if positive else NON_NEGATIVE[name]
+    dist = parameter.dist
+    given_low = dist.low if dist is not None and math.isfinite(dist.low) else parameter.nominal
+    open_zero = dist is not None and dist.kind == "truncated-normal" and given_low == 0
+    lowest = min(parameter.nominal, given_low)
+    if (lowest <= 0 and not open_zero) if positive else lowest < 0:
+        verb = "must be positive" if positive else "cannot be negative"
+        raise reader.fail(f"{rule} {verb}, got {parameter.given}", where)
+    if dist is None or dist.kind not in ("normal", "truncated-normal") or dist.low > 0:
+        return parameter
+    with np.errstate(all="ignore"):
+        below = float(dist.frozen().cdf(0.0))
+    if below >= NEGLIGIBLE_TAIL:
+        dist = Distribution(
+            "truncated-normal",
+            dist.nominal,
+            sd=dist.sd,
+            low=0.0,
+            high=dist.high,
+            truncated_share=below,
+        )
+        _check_draws(reader, dist, where, parameter.unit)
+        if positive and not dist.ppf(SMALLEST_DESIGN_PROBABILITY) > 0:
+            raise reader.fail(
+                f"{rule} must be positive, but this normal, even truncated at zero, draws "
+                f'zero; give a smaller sd, or a lognormal (dist = "lognormal"), got '
+                f"{parameter.given}",
+                where,
+            )
+        return replace(parameter, dist=dist)
+    return parameter
+
+
+def input_flags(parameters: dict[str, Parameter]) -> list[dict]:
+    """Flags for budget.json about the inputs as loaded: each normal truncated at zero where
+    the truncation moves its mean or sd noticeably (NOTEWORTHY_TAIL of its draws or more)."""
+    flags = []
+    for p in parameters.values():
+        if p.dist is None or p.dist.truncated_share < NOTEWORTHY_TAIL:
+            continue
+        rule = POSITIVE.get(p.name) or NON_NEGATIVE.get(p.name)
+        flags.append(
+            {
+                "code": "truncated-at-zero",
+                "message": (
+                    f"{p.name} ({rule}): the normal distribution as written puts "
+                    f"{100 * p.dist.truncated_share:.3g} % of its draws at or below zero; it is "
+                    "truncated at zero, so its mean and sd differ from those written"
+                ),
+            }
+        )
+    return flags

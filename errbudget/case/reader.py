@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
+from errbudget.case.limits import MAX_MAGNITUDE
 from errbudget.case.units import format_unit, parse_quantity
 from errbudget.errors import InputError, did_you_mean
 
@@ -47,7 +48,7 @@ class CaseReader:
     def quantity(self, value: object, where: str, unit, meaning: str) -> float:
         try:
             parsed = parse_quantity(value, where)
-            return float(parsed.to(unit).magnitude)
+            converted = float(parsed.to(unit).magnitude)
         except InputError as error:
             raise error.located(self.source, where) from None
         except Exception:  # pint's DimensionalityError and relatives
@@ -56,6 +57,19 @@ class CaseReader:
                 f'convertible to "{format_unit(unit)}"',
                 where,
             ) from None
+        self.magnitude(converted, f"{value!r}", where, unit)
+        return converted
+
+    def magnitude(self, value: float, given: str, where: str, unit=None) -> float:
+        """Refuse a number beyond :data:`MAX_MAGNITUDE` (or not finite) in internal units."""
+        label = f" {format_unit(unit)}" if unit is not None else ""
+        if not math.isfinite(value) or abs(value) > MAX_MAGNITUDE:
+            raise self.fail(
+                f"{given} is {value:g}{label}, beyond the limit of {MAX_MAGNITUDE:g} in absolute "
+                "value (a number this large is a typo or would overflow)",
+                where,
+            )
+        return value
 
     def number(
         self,

@@ -6,10 +6,12 @@ numerical core only plain floats in the case's population unit and time unit cir
 
 from __future__ import annotations
 
+import math
 import re
 
 import pint
 
+from errbudget.case.quantity_text import Grammar
 from errbudget.errors import InputError
 
 ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
@@ -17,18 +19,17 @@ Quantity = ureg.Quantity
 
 COUNT_DIMENSIONS: set[str] = set()  # dimensions created here for population names
 _NAME = re.compile(r"[A-Za-z_][A-Za-z_0-9]*")
-_SAFE_UNIT_TEXT = re.compile(r"^[A-Za-z_0-9\s\*/\^\.\(\)\-\+]*$")
 
 
 def ensure_count_units(unit_text: str) -> None:
     """Define every name in ``unit_text`` that pint does not know as a count unit of its own.
 
     A population measured in "crayfish" gets the new base dimension ``[crayfish]``; a name
-    pint knows (``tonne``, ``m``) keeps its meaning, so "mussel / m**2" is a density.
+    pint knows (``tonne``, ``m``) keeps its meaning, so "mussel / m**2" is a density. The text
+    is checked against the grammar first, so nothing is defined from a refused string.
     """
-    for name in _NAME.findall(unit_text):
-        if name.startswith("_"):  # pint's and Python's private names are never units
-            raise InputError(f'"{name}" cannot be used as a unit name (it starts with "_")')
+    names = Grammar(unit_text, None).check()[2]
+    for name in names:
         try:
             ureg.parse_units(name)
         except pint.errors.UndefinedUnitError:
@@ -36,6 +37,22 @@ def ensure_count_units(unit_text: str) -> None:
             COUNT_DIMENSIONS.add(f"[{name}]")
         except (pint.errors.PintError, ValueError, TypeError, AttributeError):
             raise InputError(f'"{name}" cannot be used as a unit name') from None
+
+
+def _refuse_offset_units(names: list[str], text: str, where: str) -> None:
+    """degC and degF carry an offset: products and ratios of them have no single meaning."""
+    for name in names:
+        try:
+            multiplicative = ureg.Quantity(1, ureg.parse_units(name))._is_multiplicative
+        except (pint.errors.PintError, ValueError, TypeError, AttributeError):
+            continue  # unknown names are reported by pint with the text
+        if not multiplicative:
+            raise InputError(
+                f'"{text}" uses "{name}", a temperature scale with an offset, which cannot be '
+                'converted by a factor; give temperatures in kelvin ("293.15 K" for 20 degC) '
+                'and a spread or difference in kelvin too ("2 K" for 2 degC)',
+                where=where,
+            )
 
 
 def check_population_unit(unit: pint.Unit, text: str, where: str) -> None:
@@ -77,10 +94,10 @@ def parse_unit(text: str, where: str) -> pint.Unit:
     """Parse a unit expression such as ``"mussel / m**2"``."""
     if not isinstance(text, str) or not text.strip():
         raise InputError('expected a unit name such as "fish" or "plant / m**2"', where=where)
-    if not _SAFE_UNIT_TEXT.match(text):
-        raise InputError(f'"{text}" is not a unit expression', where=where)
+    canonical, _, names = Grammar(text, where).check()
+    _refuse_offset_units(names, text, where)
     try:
-        return ureg.parse_units(text)
+        return ureg.parse_units(canonical)
     except (pint.errors.PintError, ValueError, TypeError, AttributeError, SyntaxError):
         raise InputError(f'"{text}" is not a unit pint understands', where=where) from None
 
@@ -90,13 +107,15 @@ def parse_quantity(text: object, where: str) -> pint.Quantity:
     if isinstance(text, bool):
         raise InputError(f'expected a quantity such as "7 day", got {text!r}', where=where)
     if isinstance(text, int | float):
+        if not math.isfinite(text):
+            raise InputError(f"expected a finite number, got {text!r}", where=where)
         return Quantity(float(text), ureg.dimensionless)
     if not isinstance(text, str) or not text.strip():
         raise InputError(f'expected a quantity such as "7 day", got {text!r}', where=where)
-    if not _SAFE_UNIT_TEXT.match(text) or len(text) > 200:
-        raise InputError(f'"{text}" is not a quantity such as "7 day"', where=where)
+    canonical, _, names = Grammar(text, where).check()
+    _refuse_offset_units(names, text, where)
     try:
-        value = ureg.Quantity(text)
+        value = ureg.Quantity(canonical)
     except pint.errors.UndefinedUnitError as error:
         unknown = error.unit_names if isinstance(error.unit_names, str) else error.unit_names[0]
         raise InputError(f'"{text}" uses the unknown unit "{unknown}"', where=where) from None
@@ -118,7 +137,7 @@ def parse_quantity(text: object, where: str) -> pint.Quantity:
         magnitude = float(value.magnitude)
     except (TypeError, ValueError, OverflowError):
         raise InputError(f'"{text}" does not have a single numeric value', where=where) from None
-    if magnitude != magnitude or magnitude in (float("inf"), float("-inf")):
+    if not math.isfinite(magnitude):
         raise InputError(f'"{text}" is not a finite number', where=where)
     return value
 

@@ -6,16 +6,21 @@ verdict, recommended step and time. A new run compares itself with the last line
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import fcntl
 import json
 import math
 import os
-from contextlib import contextmanager
+import stat
 from pathlib import Path
 
 import numpy as np
 
-HISTORY_NAME = "history.jsonl"
+from errbudget.outputs.files import HISTORY_NAME, environment_error
+
+# Open the history without following a link, without blocking on a pipe, not inherited.
+_NO_FOLLOW = os.O_NOFOLLOW | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0)
 ENTRY_SCHEMA = "errbudget.history/1"
 FORECAST_POINTS = 50  # samples of the forecast kept per run: enough to interpolate a curve
 Z_95 = 1.6448536269514722  # 95th percentile of the standard normal: p95 - p5 = 2 z sd
@@ -109,19 +114,39 @@ def _plain(values) -> list:
 def last_entry(folder: Path) -> dict | None:
     """The most recent readable line of the history, or None."""
     path = folder / HISTORY_NAME
-    if not path.exists():
+    if not os.path.lexists(path):
         return None
     last = None
-    with path.open(encoding="utf-8") as stream:
-        for line in stream:
-            line = line.strip()
-            if not line:
-                continue
-            try:
-                last = json.loads(line)
-            except json.JSONDecodeError:
-                continue  # a foreign or damaged line is skipped, never rewritten
+    for line in _read_history(path).splitlines():
+        line = line.strip()
+        if not line:
+            continue
+        try:
+            last = json.loads(line)
+        except json.JSONDecodeError:
+            continue  # a foreign or damaged line is skipped, never rewritten
     return last
+
+
+def _read_history(path: Path) -> str:
+    try:
+        handle = os.open(path, os.O_RDONLY | _NO_FOLLOW)
+    except OSError as error:
+        raise environment_error(error, path, "read the history") from None
+    try:
+        _regular(handle, path)
+        with os.fdopen(os.dup(handle), "rb") as stream:
+            data = stream.read()
+    except OSError as error:
+        raise environment_error(error, path, "read the history") from None
+    finally:
+        os.close(handle)
+    return data.decode("utf-8", errors="replace")
+
+
+def _regular(handle: int, path: Path) -> None:
+    if not stat.S_ISREG(os.fstat(handle).st_mode):
+        raise environment_error(OSError(errno.ENXIO, "not a regular file"), path, "use the history")
 
 
 def compare(previous: dict | None, current: dict) -> dict | None:
@@ -228,7 +253,7 @@ def check_forecast(previous: dict, current: dict) -> dict | None:
     except ValueError:
         u_data = np.full(value.shape, np.nan)
     error = value - d
-    u_val = np.sqrt(sd**2 + u_data**2)
+    u_val = np.hypot(sd, u_data)  # no overflow of the squares
     with np.errstate(invalid="ignore"):
         exceed = np.abs(error) > COVERAGE * u_val
     return {
@@ -247,16 +272,69 @@ def check_forecast(previous: dict, current: dict) -> dict | None:
     }
 
 
-@contextmanager
+@contextlib.contextmanager
 def locked(folder: Path):
-    """An exclusive lock on the case's output folder, so concurrent runs do not interleave."""
-    folder.mkdir(parents=True, exist_ok=True)
-    with (folder / ".lock").open("a") as handle:
+    """An exclusive lock on the case's output folder, so concurrent runs do not interleave.
+
+    The lock is taken on the folder itself (``flock`` on its descriptor), so no lock file
+    is ever left behind. Folders this call creates are removed again if the block fails
+    while they are still empty. A folder that is a symbolic link is refused, never followed.
+    """
+    created = _make_folders(folder)
+    try:
+        handle = _lock(folder)
+    except BaseException:
+        _remove_if_empty(created)
+        raise
+    try:
+        yield
+    except BaseException:
+        _remove_if_empty(created)
+        raise
+    finally:
+        fcntl.flock(handle, fcntl.LOCK_UN)
+        os.close(handle)
+
+
+def _make_folders(folder: Path) -> list[Path]:
+    """Create ``folder`` and missing parents; the ones created, deepest first."""
+    missing = [p for p in (folder, *folder.parents) if not os.path.lexists(p)]
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as error:
+        _remove_if_empty([p for p in missing if p.is_dir()])
+        raise environment_error(
+            error, error.filename or folder, "create the output folder"
+        ) from None
+    return missing
+
+
+def _lock(folder: Path) -> int:
+    """A descriptor of ``folder`` holding an exclusive lock (retried if the folder was
+    removed and made anew by another run while this one waited)."""
+    while True:
+        try:
+            handle = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW)
+        except OSError as error:
+            raise environment_error(error, folder, "open the output folder") from None
         fcntl.flock(handle, fcntl.LOCK_EX)
         try:
-            yield
-        finally:
-            fcntl.flock(handle, fcntl.LOCK_UN)
+            same = os.stat(folder, follow_symlinks=False).st_ino == os.fstat(handle).st_ino
+        except FileNotFoundError:
+            same = False
+        if same:
+            return handle
+        fcntl.flock(handle, fcntl.LOCK_UN)
+        os.close(handle)
+        _make_folders(folder)
+
+
+def _remove_if_empty(folders: list[Path]) -> None:
+    for path in folders:  # deepest first
+        try:
+            path.rmdir()
+        except OSError:
+            return  # not empty (or gone): keep it and its parents
 
 
 def line_text(line: dict) -> str:
@@ -267,10 +345,32 @@ def line_text(line: dict) -> str:
 def append(folder: Path, line: dict, text: str | None = None) -> None:
     """Append one line (one write call, flushed and synced); earlier lines are untouched.
 
-    ``text`` is :func:`line_text` of ``line`` when the caller already made it.
+    ``text`` is :func:`line_text` of ``line`` when the caller already made it. The history
+    is opened without following a symbolic link (refused) and must be a regular file.
     """
     text = line_text(line) if text is None else text
-    with (folder / HISTORY_NAME).open("a", encoding="utf-8") as stream:
-        stream.write(text)
-        stream.flush()
-        os.fsync(stream.fileno())
+    path = folder / HISTORY_NAME
+    try:
+        handle = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT | _NO_FOLLOW, 0o644)
+    except OSError as error:
+        raise environment_error(error, path, "append to the history") from None
+    size = None
+    try:
+        _regular(handle, path)
+        size = os.fstat(handle).st_size
+        data = memoryview(text.encode("utf-8"))
+        while data:
+            data = data[os.write(handle, data) :]
+        os.fsync(handle)
+    except OSError as error:
+        if size is not None:  # a partial line would join the next one: cut it off again
+            _truncate(handle, size)
+        raise environment_error(error, path, "append to the history") from None
+    finally:
+        os.close(handle)
+
+
+def _truncate(handle: int, size: int) -> None:
+    # Best effort: the fault that brought us here is the one reported.
+    with contextlib.suppress(OSError):
+        os.ftruncate(handle, size)

@@ -5,13 +5,32 @@ from __future__ import annotations
 import csv
 import io
 
+# A text cell starting with one of these is run as a formula by spreadsheet programs; a
+# leading apostrophe makes it plain text (OWASP "CSV injection" advice). Numbers are kept.
+FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def neutral(value):
+    """A CSV cell: None as empty, a text that a spreadsheet would run prefixed with ``'``.
+
+    A carriage return inside a text becomes a line feed: the writer quotes a cell holding
+    its line terminator ("\n") but not a lone "\r", which readers take for a row's end.
+    """
+    if value is None:
+        return ""
+    if not isinstance(value, str):
+        return value
+    if value.startswith(FORMULA_START):
+        value = "'" + value
+    return value.replace("\r\n", "\n").replace("\r", "\n")
+
 
 def _csv(header: list[str], rows: list[list]) -> str:
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(header)
     for row in rows:
-        writer.writerow(["" if value is None else value for value in row])
+        writer.writerow([neutral(value) for value in row])
     return buffer.getvalue()
 
 
