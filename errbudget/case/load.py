@@ -465,4 +465,7 @@ def describe(case: Case) -> str:
     if case.counts:
         c = case.counts
         lines.append(f"  counts: {c.path.name} ({c.error}), fitting {', '.join(c.fit)}")
+        priors = [n for n in c.fit if case.parameters[n].dist is not None]
+        if priors:
+            lines.append(f"    priors (their distributions above): {', '.join(priors)}")
     return "\n".join(lines)

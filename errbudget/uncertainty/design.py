@@ -33,7 +33,7 @@ Herman, J., Usher, W. (2017). SALib: An open-source Python library for sensitivi
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from SALib.sample import sobol as salib_sample
@@ -41,6 +41,7 @@ from scipy import stats
 
 from errbudget.case.distributions import Distribution
 from errbudget.errors import InputError
+from errbudget.uncertainty.scales import LINEAR, LN, Scale
 
 # Smallest base sample accepted: below 16 the bootstrap intervals are meaningless and the
 # half-sample convergence check would use 8 points or fewer (common practice, no source).
@@ -63,15 +64,17 @@ class JointNormal:
         Covariance, symmetric positive definite [products of the units of ``mean``].
     group : str
         Name of the group in the Sobol indices.
-    log_scale : tuple of bool, optional
-        Per name: the normal is on ln(value), so value = exp(normal draw).
+    log_scale : tuple of bool or Scale, optional
+        Per name, the scale the normal is on: True for ln(value) (value = exp(draw)), False
+        for the value itself, or a :class:`errbudget.uncertainty.scales.Scale` (e.g. a logit
+        scale that keeps a fitted parameter inside its prior's range). Stored as Scales.
     """
 
     names: tuple[str, ...]
     mean: np.ndarray
     cov: np.ndarray
     group: str = "fitted"
-    log_scale: tuple[bool, ...] | None = None
+    log_scale: tuple[bool | Scale, ...] | None = None
 
     def __post_init__(self):
         names = tuple(self.names)
@@ -89,7 +92,7 @@ class JointNormal:
             raise ValueError("JointNormal mean and cov must be finite")
         if not np.allclose(cov, cov.T, rtol=1e-10, atol=0.0):
             raise ValueError("JointNormal cov must be symmetric")
-        log_scale = None if self.log_scale is None else tuple(bool(x) for x in self.log_scale)
+        log_scale = None if self.log_scale is None else tuple(map(_as_scale, self.log_scale))
         if log_scale is not None and len(log_scale) != k:
             raise ValueError(f"JointNormal log_scale needs {k} entries, got {len(log_scale)}")
         mean.flags.writeable = False
@@ -99,6 +102,15 @@ class JointNormal:
         object.__setattr__(self, "cov", cov)
         object.__setattr__(self, "log_scale", log_scale)
 
+    @property
+    def scales(self) -> tuple[Scale, ...]:
+        """The scale of each entry (linear where none was given)."""
+        return self.log_scale or (LINEAR,) * len(self.names)
+
+    def scaled(self, factor: float) -> JointNormal:
+        """The same distribution with its covariance multiplied by ``factor``."""
+        return replace(self, cov=self.cov * factor)
+
     def cholesky(self) -> np.ndarray:
         """Lower Cholesky factor ``L`` with ``L L^T = cov``."""
         try:
@@ -107,6 +119,12 @@ class JointNormal:
             raise ValueError(
                 f"the covariance of group {self.group!r} {self.names} is not positive definite"
             ) from None
+
+
+def _as_scale(entry) -> Scale:
+    if isinstance(entry, Scale):
+        return entry
+    return LN if bool(entry) else LINEAR
 
 
 @dataclass(frozen=True, eq=False)
@@ -181,9 +199,10 @@ def sample_design(
     Notes
     -----
     Independent input ``x = F^-1(u)``. A joint group maps its ``k`` columns to
-    ``z = Phi^-1(u)`` and then ``x = mu + L z`` with ``L L^T = Sigma`` (Cholesky), and
-    ``exp(x)`` for log-scaled entries. The columns of ``z`` are mixed by ``L``, so they
-    have no meaning alone and are resampled together in the ``AB`` rows.
+    ``z = Phi^-1(u)`` and then ``x = mu + L z`` with ``L L^T = Sigma`` (Cholesky), each
+    entry mapped back from its scale (``exp(x)`` for ln-scaled entries). The columns of
+    ``z`` are mixed by ``L``, so they have no meaning alone and are resampled together in
+    the ``AB`` rows.
     """
     n_base = _check_base(n_base)
     seed = check_seed(seed)
@@ -232,9 +251,8 @@ def sample_design(
     if joint is not None:
         z = stats.norm.ppf(unit[:, len(ind_names) :])
         x = joint.mean + z @ joint.cholesky().T
-        log_scale = joint.log_scale or (False,) * len(joint_names)
-        for j, name in enumerate(joint_names):
-            values[name] = np.exp(x[:, j]) if log_scale[j] else x[:, j]
+        for j, (name, scale) in enumerate(zip(joint_names, joint.scales, strict=True)):
+            values[name] = np.asarray(scale.to_natural(x[:, j]), dtype=float)
     for name, column in values.items():
         if not np.all(np.isfinite(column)):
             raise ValueError(f"input {name!r} maps to non-finite values; check its distribution")

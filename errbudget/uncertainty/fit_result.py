@@ -107,6 +107,8 @@ class FitResult:
                 "unit": units.get(name),
                 "log_scale": bool(self.log_scale[j]),
             }
+            if self.scales:
+                entry["scale"] = self.scales[j].describe()
             if self.interval is not None:
                 entry["low"], entry["high"] = _plain(self.interval[j])
             parameters[name] = entry
@@ -127,6 +129,9 @@ class FitResult:
             "converged": bool(self.converged),
             "uncertainty_method": self.uncertainty_method,
             "message": self.message,
+            "posterior": _plain_tree(self.posterior),
+            "weakly_informed": list(self.weak),
+            "held_at_bound": list(self.held),
         }
 
 

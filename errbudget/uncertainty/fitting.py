@@ -57,6 +57,9 @@ Z90 = 1.6448536269514722  # standard normal 95th percentile: central 90 % interv
 # that moved less than MOVED prior sd, means the counts barely inform the parameter.
 BARELY_NARROWED = 0.8
 MOVED = 0.5
+# common practice, no source: a posterior mean this many prior sd from the prior mean means
+# the counts contradict the prior.
+CONFLICT = 3.0
 
 
 @dataclass(frozen=True, eq=False)
@@ -361,7 +364,7 @@ def _posterior_fit(build, problem, z, objective, held, rng, seed):
         sds.append(transformed_moments(scale, mean, spread)[1])
         interval.append(scale.to_natural(np.array([mean - Z90 * spread, mean + Z90 * spread])))
     correlation = chosen.cov / np.outer(sd_z, sd_z)
-    message = f"converged (posterior mode); uncertainty from the {chosen.message}{note}"
+    message = f"converged (posterior mode); uncertainty: {chosen.message}{note}"
     return build(
         z,
         objective,
@@ -380,7 +383,7 @@ def _posterior_fit(build, problem, z, objective, held, rng, seed):
 
 def _posterior_summary(problem, names, chosen: Posterior, seed: int):
     """Prior and posterior moments per parameter, and the names the counts barely inform."""
-    parameters, weak = {}, []
+    parameters, weak, conflict = {}, [], []
     sd_z = None if chosen.cov is None else np.sqrt(np.diag(chosen.cov))
     for j, (name, scale, prior) in enumerate(
         zip(names, problem.scales, problem.priors, strict=True)
@@ -398,6 +401,8 @@ def _posterior_summary(problem, names, chosen: Posterior, seed: int):
             entry["sd_ratio"], entry["moved"] = ratio, moved
             if ratio >= BARELY_NARROWED and moved <= MOVED:
                 weak.append(name)
+            if moved > CONFLICT:
+                conflict.append(name)
         elif prior is None and sd_z is not None and scale.is_ln and not sd_z[j] <= LOG_SD_LIMIT:
             weak.append(name)
         parameters[name] = entry
@@ -408,5 +413,6 @@ def _posterior_summary(problem, names, chosen: Posterior, seed: int):
         "seed": int(seed),
         "message": chosen.message,
         "parameters": parameters,
+        "prior_conflict": conflict,
     }
     return summary, tuple(weak)

@@ -122,8 +122,9 @@ def _proposal(problem, z_mode, free, cov_free, rng, n):
         draws = from_prior
         return draws, _prior_component_density(problem, draws, index, center, sd)
     t = stats.multivariate_t(loc=center, shape=cov_free, df=T_DOF)
-    draws = np.vstack([from_prior, np.atleast_2d(t.rvs(size=n - n_prior, random_state=rng))])
-    log_t = np.atleast_1d(t.logpdf(draws))
+    from_t = np.asarray(t.rvs(size=n - n_prior, random_state=rng)).reshape(-1, index.size)
+    draws = np.vstack([from_prior, from_t])
+    log_t = np.asarray(t.logpdf(draws)).reshape(-1)
     log_p = _prior_component_density(problem, draws, index, center, sd)
     return draws, np.logaddexp(math.log(PRIOR_SHARE) + log_p, math.log1p(-PRIOR_SHARE) + log_t)
 
