@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
+from errbudget.case.correlations import describe_correlations, read_correlations
 from errbudget.case.distributions import Distribution
 from errbudget.case.limits import MAX_FINEST_STEPS
 from errbudget.case.parameters import Parameter, builtin_parameters, custom_model
@@ -31,7 +32,16 @@ from errbudget.laws import models
 from errbudget.solve.problem import QUANTITY_KINDS, QuantitySpec
 from errbudget.solve.tableaux import get_scheme
 
-TOP_KEYS = ("title", "model", "parameters", "simulation", "quantity", "budget", "counts")
+TOP_KEYS = (
+    "title",
+    "model",
+    "parameters",
+    "simulation",
+    "quantity",
+    "budget",
+    "counts",
+    "correlations",
+)
 MODEL_KEYS = ("form", "unit", "rate")
 SIMULATION_KEYS = ("scheme", "step", "horizon")
 QUANTITY_KEYS = ("name", "kind", "at", "level")
@@ -84,6 +94,8 @@ class Case:
     quantities: tuple[QuantitySpec, ...]
     budget: BudgetSpec
     counts: CountsSpec | None
+    # Normal-score correlations (first, second, rho) of uncertain inputs, in the order given.
+    correlations: tuple[tuple[str, str, float], ...] = ()
 
     def quantity_unit(self, spec: QuantitySpec) -> str:
         return self.time_unit if spec.kind == "time-to" else self.population_unit
@@ -192,6 +204,8 @@ def load_case(path: str | Path) -> Case:
     quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon)
     budget = _budget(reader, data.get("budget", {}))
     counts = _counts(reader, data.get("counts"), time_unit, parameters)
+    fitted = counts.fit if counts is not None else ()
+    correlations = read_correlations(reader, data.get("correlations"), parameters, fitted)
 
     return Case(
         title=title,
@@ -209,6 +223,7 @@ def load_case(path: str | Path) -> Case:
         quantities=quantities,
         budget=budget,
         counts=counts,
+        correlations=correlations,
     )
 
 
@@ -448,6 +463,7 @@ def describe(case: Case) -> str:
     for p in case.parameters.values():
         spread = "fixed" if p.dist is None else p.dist.describe(p.unit)
         lines.append(f"    {p.name} = {p.nominal:g} {p.unit} ({spread})")
+    lines.extend(describe_correlations(case.correlations))
     lines.append("  quantities:")
     for q in case.quantities:
         detail = ""

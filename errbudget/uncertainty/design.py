@@ -3,8 +3,11 @@
 The uncertain inputs are sampled once on the unit hypercube with the Saltelli design of
 SALib (Herman & Usher 2017) and mapped to parameter values through each input's inverse
 cumulative distribution function. Parameters fitted together from counts are correlated;
-they are drawn as one multivariate normal and resampled together as one SALib group, so
-the indices speak of "the fitted parameters" rather than pretending each is independent.
+they are drawn as one multivariate normal (on each parameter's estimation scale) and
+resampled together as one SALib group, so the indices speak of "the fitted parameters"
+rather than pretending each is independent. Inputs correlated in the case's
+``[correlations]`` are drawn through a Gaussian copula over their stated distributions and
+form one group per set of linked inputs, named by their names joined with "+".
 
 Row layout of the design (checked in ``SALib/sample/sobol.py``, SALib 1.6, with
 ``calc_second_order=False``): for each base sample ``j = 0 .. N-1`` a block of ``D + 2``
@@ -32,7 +35,7 @@ Herman, J., Usher, W. (2017). SALib: An open-source Python library for sensitivi
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -128,6 +131,91 @@ def _as_scale(entry) -> Scale:
 
 
 @dataclass(frozen=True, eq=False)
+class GaussianCopula:
+    """Inputs with their own distributions whose normal scores are correlated, one group.
+
+    A draw maps k uniform columns u to z = Phi^-1(u), correlates them, z_c = L z with
+    L L^T = C (Cholesky), and gives x_i = F_i^-1(Phi(z_c,i)): each input keeps its stated
+    distribution F_i and the normal scores have correlation matrix C (Nelsen 2006, An
+    Introduction to Copulas, 2nd ed., Springer, sec. 2.9). Spearman's rank correlation of
+    inputs i, j is (6 / pi) asin(C_ij / 2) (Kruskal 1958, J. Am. Stat. Assoc. 53:814).
+
+    Attributes
+    ----------
+    names : tuple of str
+        The inputs, in the order of ``correlation``.
+    marginals : tuple of Distribution
+        Each input's distribution [internal unit of the input].
+    correlation : numpy.ndarray, shape (k, k)
+        Correlation of the normal scores: symmetric, unit diagonal, positive definite.
+    group : str
+        Name of the group in the Sobol indices (default: the names joined by "+").
+    """
+
+    names: tuple[str, ...]
+    marginals: tuple[Distribution, ...]
+    correlation: np.ndarray
+    group: str = ""
+
+    def __post_init__(self):
+        names = tuple(self.names)
+        matrix = np.array(self.correlation, dtype=float)
+        k = len(names)
+        if k < 2 or len(set(names)) != k or len(self.marginals) != k:
+            raise ValueError(f"a GaussianCopula needs 2 or more distinct names, got {names}")
+        if matrix.shape != (k, k) or not np.allclose(np.diag(matrix), 1.0, rtol=0, atol=1e-12):
+            raise ValueError(f"the correlation of {names} must be ({k}, {k}) with unit diagonal")
+        if not np.allclose(matrix, matrix.T, rtol=0, atol=1e-12):
+            raise ValueError(f"the correlation of {names} must be symmetric")
+        try:
+            np.linalg.cholesky(matrix)
+        except np.linalg.LinAlgError:
+            raise ValueError(f"the correlation of {names} is not positive definite") from None
+        matrix.flags.writeable = False
+        object.__setattr__(self, "names", names)
+        object.__setattr__(self, "marginals", tuple(self.marginals))
+        object.__setattr__(self, "correlation", matrix)
+        object.__setattr__(self, "group", self.group or "+".join(names))
+
+    def values(self, unit: np.ndarray) -> dict[str, np.ndarray]:
+        """Input values for uniform columns ``unit`` (n, k) in (0, 1)."""
+        z = stats.norm.ppf(unit) @ np.linalg.cholesky(self.correlation).T
+        u = np.clip(stats.norm.cdf(z), UNIT_CLIP, 1.0 - UNIT_CLIP)
+        return {
+            name: np.asarray(marginal.ppf(u[:, j]), dtype=float)
+            for j, (name, marginal) in enumerate(zip(self.names, self.marginals, strict=True))
+        }
+
+
+def copulas_for_case(case) -> list[GaussianCopula]:
+    """One GaussianCopula per group of inputs linked by the case's ``[correlations]``."""
+    from errbudget.case.correlations import components, correlation_matrix
+
+    return [
+        GaussianCopula(
+            names,
+            tuple(case.parameters[n].dist for n in names),
+            correlation_matrix(names, case.correlations),
+        )
+        for names in components(case.correlations)
+    ]
+
+
+def design_for_case(case, joint: JointNormal | None, n_base: int, seed: int) -> Design | None:
+    """The Saltelli design of a case: independent inputs, correlated groups, fitted group.
+
+    Inputs in ``joint`` (the fit) and in the case's correlations are drawn by their group;
+    every other uncertain parameter independently. None when nothing is uncertain.
+    """
+    copulas = copulas_for_case(case)
+    taken = set(joint.names if joint is not None else ()).union(*(c.names for c in copulas))
+    independent = {k: v for k, v in case.uncertain().items() if k not in taken}
+    if not independent and joint is None and not copulas:
+        return None
+    return sample_design(independent, joint, n_base, seed, correlated=copulas)
+
+
+@dataclass(frozen=True, eq=False)
 class Design:
     """A Saltelli design over the uncertain inputs (see the module docstring for rows)."""
 
@@ -155,6 +243,25 @@ def unique_in_order(items) -> list[str]:
     return list(dict.fromkeys(items))
 
 
+def _check_disjoint(ind_names, corr_names, joint) -> None:
+    """Each input in one group only; group names distinct from parameter names."""
+    if len(set(corr_names)) != len(corr_names) or set(corr_names) & set(ind_names):
+        raise ValueError("an input is in more than one correlated group or also independent")
+    if joint is None:
+        return
+    both = sorted((set(ind_names) | set(corr_names)) & set(joint.names))
+    if both:
+        raise InputError(
+            f"parameter {both[0]!r} is both fitted from counts and given its own "
+            "distribution; accepted: one or the other"
+        )
+    if joint.group in ind_names or joint.group in joint.names or joint.group in corr_names:
+        raise InputError(
+            f"parameter name {joint.group!r} collides with the name of the group of "
+            "fitted parameters; accepted: any other parameter name"
+        )
+
+
 def _check_base(n_base) -> int:
     is_int = isinstance(n_base, int | np.integer) and not isinstance(n_base, bool)
     if not is_int or n_base < MIN_BASE_SAMPLES or n_base & (n_base - 1):
@@ -176,6 +283,8 @@ def sample_design(
     joint: JointNormal | None,
     n_base: int,
     seed: int,
+    *,
+    correlated: Sequence[GaussianCopula] = (),
 ) -> Design:
     """Sample the Saltelli design for first-order and total Sobol indices.
 
@@ -190,6 +299,8 @@ def sample_design(
     seed : int
         Seed of the scrambled Sobol sequence; the same seed gives the same design bit
         for bit.
+    correlated : sequence of GaussianCopula
+        Groups of inputs with correlated normal scores, each sampled as one group.
 
     Returns
     -------
@@ -202,28 +313,22 @@ def sample_design(
     ``z = Phi^-1(u)`` and then ``x = mu + L z`` with ``L L^T = Sigma`` (Cholesky), each
     entry mapped back from its scale (``exp(x)`` for ln-scaled entries). The columns of
     ``z`` are mixed by ``L``, so they have no meaning alone and are resampled together in
-    the ``AB`` rows.
+    the ``AB`` rows; so are the columns of a correlated group (:class:`GaussianCopula`).
+    Column order: independent inputs, correlated groups, the fitted group. Correlated inputs
+    are analysed as a group because the Saltelli estimators assume independent columns
+    (Jacques, Lavergne & Devictor 2006, Reliab. Eng. Syst. Saf. 91:1126).
     """
     n_base = _check_base(n_base)
     seed = check_seed(seed)
     ind_names = tuple(independent)
     joint_names = () if joint is None else joint.names
-    if not ind_names and not joint_names:
+    corr_names = tuple(n for c in correlated for n in c.names)
+    if not ind_names and not joint_names and not corr_names:
         raise ValueError("sample_design needs at least one uncertain input")
-    if joint is not None:
-        both = sorted(set(ind_names) & set(joint_names))
-        if both:
-            raise InputError(
-                f"parameter {both[0]!r} is both fitted from counts and given its own "
-                "distribution; accepted: one or the other"
-            )
-        if joint.group in ind_names or joint.group in joint_names:
-            raise InputError(
-                f"parameter name {joint.group!r} collides with the name of the group of "
-                "fitted parameters; accepted: any other parameter name"
-            )
-    names = ind_names + joint_names
-    groups = ind_names + (() if joint is None else (joint.group,) * len(joint_names))
+    _check_disjoint(ind_names, corr_names, joint)
+    names = ind_names + corr_names + joint_names
+    groups = ind_names + tuple(c.group for c in correlated for _ in c.names)
+    groups += () if joint is None else (joint.group,) * len(joint_names)
     n_cols = len(names)
     problem = {
         "num_vars": n_cols,
@@ -248,8 +353,12 @@ def sample_design(
     values: dict[str, np.ndarray] = {}
     for i, name in enumerate(ind_names):
         values[name] = np.asarray(independent[name].ppf(unit[:, i]), dtype=float)
+    column = len(ind_names)
+    for copula in correlated:
+        values.update(copula.values(unit[:, column : column + len(copula.names)]))
+        column += len(copula.names)
     if joint is not None:
-        z = stats.norm.ppf(unit[:, len(ind_names) :])
+        z = stats.norm.ppf(unit[:, column:])
         x = joint.mean + z @ joint.cholesky().T
         for j, (name, scale) in enumerate(zip(joint_names, joint.scales, strict=True)):
             values[name] = np.asarray(scale.to_natural(x[:, j]), dtype=float)

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 from SALib.analyze import sobol as salib_analyze
@@ -27,6 +27,7 @@ from errbudget.case.distributions import Distribution
 from errbudget.uncertainty.design import (
     MIN_BASE_SAMPLES,
     Design,
+    GaussianCopula,
     JointNormal,
     check_seed,
     sample_design,
@@ -36,6 +37,7 @@ from errbudget.uncertainty.design import (
 __all__ = [
     "MIN_BASE_SAMPLES",
     "Design",
+    "GaussianCopula",
     "JointNormal",
     "sample_design",
     "sobol_for_function",
@@ -218,6 +220,7 @@ def sobol_for_function(
     seed: int,
     *,
     joint: JointNormal | None = None,
+    correlated: Sequence[GaussianCopula] = (),
 ) -> dict:
     """Sample a design, evaluate ``f`` on it (vectorised) and return its Sobol indices.
 
@@ -231,6 +234,8 @@ def sobol_for_function(
         As in :func:`sample_design`; ``seed`` also seeds the bootstrap.
     joint : JointNormal, optional
         Correlated inputs sampled as one group.
+    correlated : sequence of GaussianCopula, optional
+        Groups of inputs with correlated normal scores.
 
     Returns
     -------
@@ -238,7 +243,7 @@ def sobol_for_function(
         The result of :func:`sobol_indices` plus ``"_spread"``: :func:`spread_summary` of
         ``f`` on the ``A`` and ``B`` rows.
     """
-    design = sample_design(distributions, joint, n_base, seed)
+    design = sample_design(distributions, joint, n_base, seed, correlated=correlated)
     y = np.asarray(f(design.values), dtype=float)
     result = sobol_indices(design, y, seed=seed)
     result["_spread"] = spread_summary(y.reshape(-1)[design.independent_rows])
