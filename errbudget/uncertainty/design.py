@@ -243,6 +243,24 @@ def unique_in_order(items) -> list[str]:
     return list(dict.fromkeys(items))
 
 
+def _unit_design(problem: dict, n_base: int, seed: int) -> np.ndarray:
+    """SALib's Saltelli rows on the unit hypercube, shape (n_base (D + 2), k), off 0 and 1."""
+    n_cols, groups = problem["num_vars"], problem["groups"]
+    # SALib mutates the problem it is given (adds "sample_scaled"): hand it a copy.
+    unit = salib_sample.sample(dict(problem), n_base, calc_second_order=False, seed=seed)
+    n_groups = len(unique_in_order(groups))
+    if n_groups == 1 and n_cols > 1:
+        # SALib ignores a single group spanning several columns (util._check_groups) and
+        # swaps them one at a time; the one-group design is A, AB = B, B per base sample.
+        per_block = unit.reshape(n_base, n_cols + 2, n_cols)
+        unit = per_block[:, [0, n_cols + 1, n_cols + 1], :].reshape(-1, n_cols)
+    block = n_groups + 2
+    if unit.shape[0] != n_base * block:
+        raise RuntimeError(f"SALib returned {unit.shape[0]} rows, expected {n_base * block}")
+    # ppf(0) = -inf and ppf(1) = +inf for unbounded inputs: keep the design inside.
+    return np.clip(unit, UNIT_CLIP, 1.0 - UNIT_CLIP)
+
+
 def _check_disjoint(ind_names, corr_names, joint) -> None:
     """Each input in one group only; group names distinct from parameter names."""
     if len(set(corr_names)) != len(corr_names) or set(corr_names) & set(ind_names):
@@ -336,20 +354,8 @@ def sample_design(
         "bounds": [[0.0, 1.0]] * n_cols,
         "groups": list(groups),
     }
-    # SALib mutates the problem it is given (adds "sample_scaled"): hand it a copy.
-    unit = salib_sample.sample(dict(problem), n_base, calc_second_order=False, seed=seed)
-    n_groups = len(unique_in_order(groups))
-    if n_groups == 1 and n_cols > 1:
-        # SALib ignores a single group spanning several columns (util._check_groups) and
-        # swaps them one at a time; the one-group design is A, AB = B, B per base sample.
-        per_block = unit.reshape(n_base, n_cols + 2, n_cols)
-        unit = per_block[:, [0, n_cols + 1, n_cols + 1], :].reshape(-1, n_cols)
-    block = n_groups + 2
-    if unit.shape[0] != n_base * block:
-        raise RuntimeError(f"SALib returned {unit.shape[0]} rows, expected {n_base * block}")
-    # ppf(0) = -inf and ppf(1) = +inf for unbounded inputs: keep the design inside.
-    unit = np.clip(unit, UNIT_CLIP, 1.0 - UNIT_CLIP)
-
+    unit = _unit_design(problem, n_base, seed)
+    block = len(unique_in_order(groups)) + 2
     values: dict[str, np.ndarray] = {}
     for i, name in enumerate(ind_names):
         values[name] = np.asarray(independent[name].ppf(unit[:, i]), dtype=float)
