@@ -216,15 +216,17 @@ def _weak_flag(fit: CaseFit, parameters: dict) -> dict:
         else:
             parts.append(f"{name} (the likelihood is nearly flat: sd of its ln value above 2)")
     prior_only = all(parameters.get(name, {}).get("prior_sd") for name in result.weak)
+    one = len(result.weak) == 1
+    its, them = ("its", "it") if one else ("their", "them")
     consequence = (
-        "their spread in the budget is essentially their prior's"
+        f"{its} spread in the budget is essentially {its} prior's"
         if prior_only
-        else "their spread in the budget rests on little information"
+        else f"{its} spread in the budget rests on little information"
     )
     return {
         "code": "weakly-informed",
         "message": (
             "the counts barely inform " + "; ".join(parts) + f": {consequence}; counts "
-            "over a longer stretch of the growth would narrow them"
+            f"over a longer stretch of the growth would narrow {them}"
         ),
     }

@@ -9,8 +9,8 @@ posterior / proposal, give the posterior mean and covariance of z with effective
 ESS = (sum w)^2 / sum w^2 (Gelman et al. 2013, ch. 10; Kong 1992).
 
 Which is handed on:
-- ``Laplace`` when the importance-sampling moments agree with it (every mean within 0.2
-  Laplace sd of the mode, every sd within a factor 0.8-1.25): the posterior is close to
+- ``Laplace`` when the importance-sampling moments agree with it (every mean within 0.1
+  Laplace sd of the mode, every sd within a factor 0.9-1.1): the posterior is close to
   normal on the estimation scale; also when the ESS is too low (< 200) for the check, which
   the message then says;
 - ``importance sampling`` (the weighted mean and covariance) when they disagree, or when the
@@ -43,8 +43,11 @@ IS_DRAWS = 4000  # importance-sampling draws, solved in one batched call
 T_DOF = 4.0  # degrees of freedom of the Student-t proposal (heavier tails than the normal)
 PRIOR_SHARE = 0.25  # share of the proposal mixture drawn from the prior (defensive)
 MIN_ESS = 200.0  # fewer effective draws: the sampling check is not trusted
-MEAN_TOLERANCE = 0.2  # |IS mean - mode| in Laplace sd still counted as agreement
-SD_RATIO = (0.8, 1.25)  # IS sd / Laplace sd still counted as agreement
+# Agreement of the sampled moments with the Laplace approximation: means within 0.1 Laplace
+# sd, sds within 10 %. At the smallest ESS accepted (200) these are about 1.4 and 2 standard
+# errors of the sampled moments; a disagreement hands on the sampled moments, the safer side.
+MEAN_TOLERANCE = 0.1
+SD_RATIO = (0.9, 1.1)
 FALLBACK_WIDTH = 1.0  # proposal sd of a coordinate without prior when there is no Laplace
 UNIT_CLIP = 1e-12  # keeps prior draws off the edges of their support
 GH_NODES = 60  # Gauss-Hermite nodes for moments of a transformed normal
