@@ -68,9 +68,17 @@ def test_overflow_at_an_unstable_step_is_flagged_not_crashed(capsys, tmp_path):
 
 def test_fit_that_fails_falls_back_to_the_prior_spread(capsys, tmp_path):
     # All-zero counts: the Poisson likelihood drives r, K and N0 off towards 0 or infinity.
+    # r and K are given as fixed values (no prior), so nothing holds them: K runs off.
     (tmp_path / "marsh-counts.csv").write_text("day,count\n0,0\n28,0\n56,0\n84,0\n112,0\n")
     case = tmp_path / "pond.toml"
-    case.write_text(COUNTS)
+    case.write_text(
+        COUNTS.replace(
+            'r  = { value = "0.06 / day", sd = "0.01 / day" }', 'r  = "0.06 / day"'
+        ).replace(
+            'K  = { value = "9000 crayfish", low = "7500 crayfish", high = "10500 crayfish" }',
+            'K  = "9000 crayfish"',
+        )
+    )
     data = _run_ok(capsys, case, tmp_path / "out")
     failed = [flag for flag in data["flags"] if flag["code"] == "fit-failed"]
     assert len(failed) == 1
@@ -104,8 +112,8 @@ form = "custom"
 unit = "fish"
 rate = "a*b*N*(1 - N/K)"
 [parameters]
-a = { value = "0.2 / day", sd = "0.05 / day" }
-b = { value = "1", sd = "0.1" }
+a = "0.2 / day"
+b = "1"
 K = "1000 fish"
 N0 = "50 fish"
 [simulation]
@@ -123,21 +131,48 @@ fit = ["a", "b"]
 """
 
 
-def test_singular_information_through_the_cli_uses_the_bootstrap(capsys, tmp_path):
-    # Fitting a and b of a custom law in which only their product matters: the observed
-    # information matrix is singular, so the uncertainty must come from the bootstrap, the
-    # run must finish (a work cap bounds the refits) and the budget stay finite.
-    case = tmp_path / "singular.toml"
-    case.write_text(SINGULAR)
+def _singular_counts(tmp_path: Path) -> None:
     times = np.arange(0.0, 40.0, 4.0)
     mu = 1000 / (1 + (1000 / 50 - 1) * np.exp(-0.2 * times))
     counts = np.random.default_rng(1).poisson(mu)
     (tmp_path / "counts.csv").write_text(
         "time,count\n" + "".join(f"{t:g},{c}\n" for t, c in zip(times, counts, strict=True))
     )
+
+
+def test_singular_information_through_the_cli_uses_the_bootstrap(capsys, tmp_path):
+    # Fitting a and b of a custom law in which only their product matters, with no prior
+    # (fixed values in [parameters] are the start): the observed information matrix is
+    # singular, so the uncertainty must come from the bootstrap, the run must finish (a work
+    # cap bounds the refits) and the budget stay finite.
+    case = tmp_path / "singular.toml"
+    case.write_text(SINGULAR)
+    _singular_counts(tmp_path)
     data = _run_ok(capsys, case, tmp_path / "out")
     assert data["fit"]["uncertainty_method"] == "parametric bootstrap"
     assert "bootstrap" in data["fit"]["message"]
+    assert _all_numbers_finite(data)
+
+
+def test_priors_separate_what_the_counts_cannot(capsys, tmp_path):
+    # The same product a b with priors: the posterior is proper. On the ln scale the counts
+    # fix ln a + ln b, so the posterior sd of ln b is (1/s_a^2 + 1/s_b^2)^-1/2 with s_a = 0.25
+    # and s_b = 0.1 the prior sds of ln a and ln b: 0.093, 93 % of b's prior sd (conditioning
+    # of a normal; Gelman et al. 2013, Bayesian Data Analysis, sec. 3.5): b is barely informed,
+    # a (37 %) is.
+    case = tmp_path / "singular.toml"
+    case.write_text(
+        SINGULAR.replace(
+            'a = "0.2 / day"', 'a = { value = "0.2 / day", sd = "0.05 / day" }'
+        ).replace('b = "1"', 'b = { value = "1", sd = "0.1" }')
+    )
+    _singular_counts(tmp_path)
+    data = _run_ok(capsys, case, tmp_path / "out")
+    assert data["fit"]["uncertainty_method"] in ("Laplace", "importance sampling")
+    assert data["fit"]["weakly_informed"] == ["b"]
+    ratio = data["fit"]["posterior"]["parameters"]["b"]["sd_ratio"]
+    assert ratio == pytest.approx(0.93, abs=0.05)
+    assert "weakly-informed" in [flag["code"] for flag in data["flags"]]
     assert _all_numbers_finite(data)
 
 

@@ -43,7 +43,7 @@ from errbudget.case.units import parse_quantity
 from errbudget.cli import main
 from errbudget.errors import InputError
 from errbudget.outputs.tables import ladder_csv, neutral, summary_csv
-from errbudget.uncertainty.spread import UNIT_CLIP, sample_design
+from errbudget.uncertainty.design import UNIT_CLIP, sample_design
 
 POND = REPO / "cases" / "crayfish-pond.toml"
 QUICK = ["--samples", "16", "--quiet"]

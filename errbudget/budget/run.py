@@ -30,7 +30,8 @@ from errbudget.estimates.richardson import richardson
 from errbudget.solve.ensemble import ensemble_params, nominal_params
 from errbudget.solve.stream import stream
 from errbudget.solve.tableaux import get_scheme
-from errbudget.uncertainty.spread import sample_design, sobol_indices, spread_summary
+from errbudget.uncertainty.design import design_for_case
+from errbudget.uncertainty.spread import sobol_indices, spread_summary
 
 
 @dataclass
@@ -111,7 +112,7 @@ def run_case(
     scheme = get_scheme(case.scheme)
     flags: list[dict] = input_flags(case.parameters)
 
-    independent, joint = case.uncertain(), None
+    joint = None
     if case.counts is not None:
         clock.stage("fit", "fitting the counts")
         from errbudget.uncertainty.calibrate import fit_from_counts, joint_from_fit
@@ -119,7 +120,6 @@ def run_case(
         fit = fit if fit is not None else fit_from_counts(case)
         joint = joint_from_fit(fit, flags)
         if joint is not None:
-            independent = {k: v for k, v in independent.items() if k not in joint.names}
             case = with_fitted_nominal(case, fit)
 
     clock.stage("ladder", "choosing the refinement ladder")
@@ -127,7 +127,7 @@ def run_case(
     flags.extend(_ladder_flags(case, chosen, scheme.order))
 
     clock.stage("design", "sampling the parameter design")
-    design = sample_design(independent, joint, n_base, seed) if independent or joint else None
+    design = design_for_case(case, joint, n_base, seed)
     rows = design.n_rows if design is not None else 1
     _check_memory(case, rows, chosen.steps[-1])
     sampled = design.values if design is not None else {}
@@ -190,9 +190,7 @@ def run_case(
     better = None
     if joint is not None:
         clock.stage("better data", "what better data would buy")
-        better = _better_data(
-            case, joint, independent, n_base, seed, passed, limits, recommendation, floor
-        )
+        better = _better_data(case, joint, n_base, seed, passed, limits, recommendation, floor)
     validation = None
     if case.counts is not None and fit is not None:
         clock.stage("validation", "comparing with the counts")
@@ -352,7 +350,7 @@ def with_fitted_nominal(case: Case, fit) -> Case:
 
 
 def _better_data(
-    case: Case, joint, independent, n_base, seed, passed: ReferencePass, limits, recommendation,
+    case: Case, joint, n_base, seed, passed: ReferencePass, limits, recommendation,
     floor: float,
 ) -> dict:  # fmt: skip
     """The budget again as if the counts were doubled: the fitted covariance halved.
@@ -360,16 +358,7 @@ def _better_data(
     Better data narrow the parameter spread, which shrinks the allowance for numerical
     error: the adequate step may become finer.
     """
-    from errbudget.uncertainty.spread import JointNormal
-
-    halved = JointNormal(
-        names=joint.names,
-        mean=joint.mean,
-        cov=joint.cov / 2,
-        group=joint.group,
-        log_scale=joint.log_scale,
-    )
-    design = sample_design(independent, halved, n_base, seed)
+    design = design_for_case(case, joint.scaled(0.5), n_base, seed)
     ensemble = passes.ensemble_for(
         case, ensemble_params(case, design.values), design.independent_rows
     )

@@ -34,7 +34,7 @@ MAX_MAGNITUDE = 1e100  # largest |number| in internal units: products of two suc
 
 # --- distributions
 # Smallest cumulative probability the Sobol design maps through a distribution: the design is
-# clipped to [p, 1 - p] (errbudget.uncertainty.spread.UNIT_CLIP); a support bound with less
+# clipped to [p, 1 - p] (errbudget.uncertainty.design.UNIT_CLIP); a support bound with less
 # probability beyond it than p can never be crossed by a draw.
 SMALLEST_DESIGN_PROBABILITY = 1e-12
 # A normal on a parameter that must be positive (or not negative) is truncated at zero when it

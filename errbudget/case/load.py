@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
+from errbudget.case.correlations import describe_correlations, read_correlations
 from errbudget.case.distributions import Distribution
 from errbudget.case.files import read_regular_file
 from errbudget.case.limits import (
@@ -40,7 +41,16 @@ from errbudget.laws import models
 from errbudget.solve.problem import QUANTITY_KINDS, QuantitySpec
 from errbudget.solve.tableaux import get_scheme
 
-TOP_KEYS = ("title", "model", "parameters", "simulation", "quantity", "budget", "counts")
+TOP_KEYS = (
+    "title",
+    "model",
+    "parameters",
+    "simulation",
+    "quantity",
+    "budget",
+    "counts",
+    "correlations",
+)
 MODEL_KEYS = ("form", "unit", "rate")
 SIMULATION_KEYS = ("scheme", "step", "horizon")
 QUANTITY_KEYS = ("name", "kind", "at", "level")
@@ -107,6 +117,8 @@ class Case:
     quantities: tuple[QuantitySpec, ...]
     budget: BudgetSpec
     counts: CountsSpec | None
+    # Normal-score correlations (first, second, rho) of uncertain inputs, in the order given.
+    correlations: tuple[tuple[str, str, float], ...] = ()
 
     def quantity_unit(self, spec: QuantitySpec) -> str:
         return self.time_unit if spec.kind == "time-to" else self.population_unit
@@ -214,6 +226,8 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
     quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon)
     budget = _budget(reader, data.get("budget", {}), population)
     counts = _counts(reader, data.get("counts"), time_unit, parameters)
+    fitted = counts.fit if counts is not None else ()
+    correlations = read_correlations(reader, data.get("correlations"), parameters, fitted)
 
     case = Case(
         title=title,
@@ -232,6 +246,7 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
         quantities=quantities,
         budget=budget,
         counts=counts,
+        correlations=correlations,
     )
     check_design_size(case, budget.samples, str(path), "budget.samples")  # as checked raw
     return case
@@ -490,6 +505,7 @@ def describe(case: Case) -> str:
     for p in case.parameters.values():
         spread = "fixed" if p.dist is None else p.dist.describe(p.unit)
         lines.append(f"    {p.name} = {p.nominal:g} {p.unit} ({spread})")
+    lines.extend(describe_correlations(case.correlations))
     lines.append("  quantities:")
     for q in case.quantities:
         detail = ""
@@ -507,4 +523,7 @@ def describe(case: Case) -> str:
     if case.counts:
         c = case.counts
         lines.append(f"  counts: {c.path.name} ({c.error}), fitting {', '.join(c.fit)}")
+        priors = [n for n in c.fit if case.parameters[n].dist is not None]
+        if priors:
+            lines.append(f"    priors (their distributions above): {', '.join(priors)}")
     return "\n".join(lines)

@@ -157,6 +157,9 @@ def custom_model(reader, rate_text, table, population, time_unit):
     def d_dn(t, n, p):
         return expression.d_dN(t * t_factor, n * n_factor, coherent(p)) * (out_factor * n_factor)
 
+    equilibria = _numeric_equilibria(
+        expression, rate, parameters, units, population, n_factor, allowed
+    )
     coherent_form = {
         "expression": expression,
         "factors": factors,
@@ -170,9 +173,45 @@ def custom_model(reader, rate_text, table, population, time_unit):
         {n: "custom" for n in allowed},
         rate,
         d_dn,
+        equilibria,
         coherent=coherent_form,
     )
     return model, parameters
+
+
+def _numeric_equilibria(expression, rate, parameters, units, population, n_factor, allowed):
+    """``params -> list of Equilibrium`` for a custom law, found numerically per member.
+
+    The search range is [0, RANGE_FACTOR x the largest of N0 and every parameter with the
+    dimension of a population], per member; N0 is the member's own when given, else the
+    upper end of its distribution's 99.8 % interval (or its fixed value). A law that depends
+    on t has no equilibria.
+    """
+    from errbudget.laws.equilibria import RANGE_FACTOR, numeric_equilibria
+
+    if expression.uses_time:
+        return lambda p: []
+    dimension = ureg.Quantity(1, population).dimensionality
+    levels = {
+        name: parameters[name].to_coherent / n_factor
+        for name in allowed
+        if ureg.Quantity(1, units[name]).dimensionality == dimension
+    }
+    start = parameters["N0"]
+    n0_high = start.nominal
+    if start.dist is not None:
+        n0_high = max(n0_high, start.dist.interval(0.998)[1])
+
+    def equilibria(p):
+        arrays = {k: np.asarray(v, dtype=float) for k, v in p.items()}
+        shape = np.broadcast_shapes(*(a.shape for a in arrays.values()), (1,))
+        reached = np.broadcast_to(arrays.get("N0", n0_high), shape)
+        for name, factor in levels.items():
+            reached = np.fmax(reached, arrays[name] * factor)
+        law = {k: np.broadcast_to(v, shape) for k, v in arrays.items() if k != "N0"}
+        return numeric_equilibria(rate, law, RANGE_FACTOR * reached)
+
+    return equilibria
 
 
 def _given_unit(reader, name, entry):

@@ -39,10 +39,10 @@ def observation_sd(error_model: str, mu: np.ndarray, nuisance: Mapping[str, floa
 
     Poisson: sqrt(mu). Negative binomial (NB2, var = mu + mu^2 / k; Hilbe 2011, Negative
     Binomial Regression, 2nd ed., Cambridge University Press): sqrt(mu + mu^2 / k).
-    Normal: sigma. Lognormal with ln D ~ N(ln mu, s^2), i.e. mu the median as in
-    :mod:`errbudget.uncertainty.fitting`: mu exp(s^2 / 2) sqrt(exp(s^2) - 1) (the sd of a lognormal
-    variable; Johnson, Kotz & Balakrishnan 1994, Continuous Univariate Distributions vol. 1,
-    ch. 14, recalled). Where mu is the mean instead this reduces to mu sqrt(exp(s^2) - 1).
+    Normal: sigma. Lognormal with ln D ~ N(ln mu, s^2), i.e. mu the median as in the fit:
+    mu exp(s^2 / 2) sqrt(exp(s^2) - 1) (the sd of a lognormal variable; Johnson, Kotz &
+    Balakrishnan 1994, Continuous Univariate Distributions vol. 1, ch. 14, recalled). Each
+    is the ``sd`` of the observation model's class in :mod:`errbudget.uncertainty.observation`.
 
     Parameters
     ----------
@@ -59,19 +59,13 @@ def observation_sd(error_model: str, mu: np.ndarray, nuisance: Mapping[str, floa
     numpy.ndarray
         u_D, same shape as ``mu`` [population unit].
     """
-    mu = np.asarray(mu, dtype=float)
-    with np.errstate(all="ignore"):
-        if error_model == "poisson":
-            return np.sqrt(np.maximum(mu, 0.0))
-        if error_model == "negative-binomial":
-            k = float(_nuisance(nuisance, "dispersion"))
-            return np.sqrt(np.maximum(mu, 0.0) + mu**2 / k)
-        if error_model == "normal":
-            return np.full(mu.shape, float(_nuisance(nuisance, "sigma")))
-        if error_model == "lognormal":
-            s2 = float(_nuisance(nuisance, "sigma")) ** 2
-            return np.abs(mu) * np.exp(0.5 * s2) * np.sqrt(np.expm1(s2))
-    raise ValueError(f"unknown observation model {error_model!r}")
+    from errbudget.uncertainty.observation import OBSERVATION_MODELS
+
+    model = OBSERVATION_MODELS.get(error_model)
+    if model is None:
+        raise ValueError(f"unknown observation model {error_model!r}")
+    phi = math.nan if model.nuisance is None else _nuisance(nuisance, model.nuisance.name)
+    return model.sd(np.asarray(mu, dtype=float), float(phi))
 
 
 def _nuisance(nuisance: Mapping, name: str) -> float:

@@ -4,6 +4,11 @@ The model is solved for the fit with its closed-form solution where the law has 
 otherwise with classical Runge-Kutta on a step refined until halving it changes the values
 at the count times by less than FIT_TOLERANCE (relative), so the solver does not bias the
 estimates.
+
+A fitted parameter that also has a distribution in ``[parameters]`` takes it as its prior
+(:func:`errbudget.uncertainty.fitting.fit_counts`); the joint distribution handed to the
+design is a normal on each parameter's estimation scale, so a bounded prior's range holds
+for every member. :func:`fit_flags` names the parameters the counts barely inform.
 """
 
 from __future__ import annotations
@@ -113,6 +118,7 @@ def fit_from_counts(case: Case) -> CaseFit:
         counts.counts,
         spec.error,
         positive=positive,
+        priors=[case.parameters[n].dist for n in names],
         seed=case.budget.seed,
     )
     units = {name: p.unit for name, p in case.parameters.items()}
@@ -126,7 +132,13 @@ def fit_from_counts(case: Case) -> CaseFit:
 
 
 def joint_from_fit(fit: CaseFit, flags: list[dict]) -> JointNormal | None:
-    """The fitted parameters' joint distribution, or None (prior spread kept, flagged)."""
+    """The fitted parameters' joint distribution, or None (prior spread kept, flagged).
+
+    A normal on each parameter's estimation scale (ln, logit within a prior's range, ...)
+    with the fit's covariance there; its mean is the posterior mean on that scale when the
+    fit sampled the posterior, else the estimate. Appends to ``flags`` the fit-failed flag,
+    or the flags of :func:`fit_flags`.
+    """
     result = fit.result
     if not result.converged or result.cov_log is None:
         flags.append(
@@ -139,11 +151,82 @@ def joint_from_fit(fit: CaseFit, flags: list[dict]) -> JointNormal | None:
             }
         )
         return None
-    mean = np.where(result.log_scale, np.log(np.abs(result.values)), result.values)
+    scales = result.scales
+    if result.center is not None:
+        mean = np.asarray(result.center, dtype=float)
+    else:
+        mean = np.array([s.to_estimation(v) for s, v in zip(scales, result.values, strict=True)])
+    flags.extend(fit_flags(fit))
     return JointNormal(
         names=tuple(result.names),
         mean=mean,
         cov=np.array(result.cov_log),
         group="fitted",
-        log_scale=tuple(result.log_scale),
+        log_scale=tuple(scales),
     )
+
+
+def fit_flags(fit: CaseFit) -> list[dict]:
+    """Flags for budget.json about the fit (the caller appends them to ``flags``).
+
+    ``weakly-informed``: the parameters the counts barely inform; with a prior, the
+    posterior sd is at least 80 % of the prior's and its mean moved less than half a prior
+    sd; without one, the sd of ln(value) exceeds 2 (a flat likelihood profile).
+    ``prior-conflict``: the posterior mean lies more than 3 prior sd from the prior mean, so
+    the counts contradict the stated distribution. Thresholds: common practice, no source.
+    :func:`joint_from_fit` already appends these.
+    """
+    result = fit.result
+    summary = result.posterior or {}
+    parameters = summary.get("parameters", {})
+    flags = []
+    if result.weak:
+        flags.append(_weak_flag(fit, parameters))
+    conflict = summary.get("prior_conflict", [])
+    if conflict:
+        parts = [
+            f"{name} (posterior mean {parameters[name]['posterior_mean']:.3g} "
+            f"{fit.units.get(name, '')}, {parameters[name]['moved']:.1f} prior sd from the "
+            f"prior mean {parameters[name]['prior_mean']:.3g})"
+            for name in conflict
+        ]
+        flags.append(
+            {
+                "code": "prior-conflict",
+                "message": "the counts contradict the stated distribution of "
+                + "; ".join(parts)
+                + ": check the counts, their units and the distributions in [parameters]",
+            }
+        )
+    return flags
+
+
+def _weak_flag(fit: CaseFit, parameters: dict) -> dict:
+    result = fit.result
+    parts = []
+    for name in result.weak:
+        unit = fit.units.get(name, "")
+        entry = parameters.get(name, {})
+        if entry.get("prior_sd"):
+            parts.append(
+                f"{name} (posterior sd {entry['posterior_sd']:.3g} {unit}, "
+                f"{100 * entry['sd_ratio']:.0f}% of the prior's {entry['prior_sd']:.3g} {unit}; "
+                f"mean moved {entry['moved']:.2f} prior sd)"
+            )
+        else:
+            parts.append(f"{name} (the likelihood is nearly flat: sd of its ln value above 2)")
+    prior_only = all(parameters.get(name, {}).get("prior_sd") for name in result.weak)
+    one = len(result.weak) == 1
+    its, them = ("its", "it") if one else ("their", "them")
+    consequence = (
+        f"{its} spread in the budget is essentially {its} prior's"
+        if prior_only
+        else f"{its} spread in the budget rests on little information"
+    )
+    return {
+        "code": "weakly-informed",
+        "message": (
+            "the counts barely inform " + "; ".join(parts) + f": {consequence}; counts "
+            f"over a longer stretch of the growth would narrow {them}"
+        ),
+    }
