@@ -36,6 +36,11 @@ def test_better_data_never_allow_a_coarser_step(perch):
     assert perch["better_data"]["statement"].startswith("With twice as many counts")
 
 
-def test_no_counts_no_better_data_line():
+def test_without_counts_each_input_is_halved_in_turn():
     case = errbudget.load_case(CASES / "mussel-bed.toml")
-    assert errbudget.run_case(case, samples=16).to_dict()["better_data"] is None
+    better = errbudget.run_case(case, samples=16).to_dict()["better_data"]
+    assert set(better["inputs"]) == set(case.uncertain())
+    for name, item in better["inputs"].items():
+        assert item["recommended_step"]["unit"] == "week"
+        assert item["effective_draws"] > 0
+        assert f"With the sd of {name} halved" in item["statement"]

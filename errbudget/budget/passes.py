@@ -11,6 +11,7 @@ took is reused, not stepped again.
 
 from __future__ import annotations
 
+import copy
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 
@@ -185,10 +186,23 @@ class Candidates:
         self.finest = passed.finest
         self.levels: dict[float, Level] = dict(passed.levels)
         self.progress = progress
+        self.weights: np.ndarray | None = None
+
+    def weighted(self, weights: np.ndarray) -> Candidates:
+        """The same candidates (one cache of levels), judged with member weights."""
+        view = copy.copy(self)
+        view.weights = np.asarray(weights, dtype=float)
+        return view
+
+    def percentile(self, values: np.ndarray, q: float) -> float:
+        """The q-th percentile over members, weighted when the view carries weights."""
+        if self.weights is None:
+            return float(np.percentile(values, q))
+        return float(np.percentile(values, q, weights=self.weights, method="inverted_cdf"))
 
     def level(self, step: float) -> Level:
         """The ensemble at ``step`` (stepped now unless already known)."""
-        if step not in self.levels:
+        if step not in self.levels:  # shared by every weighted view
             found = stream(
                 self.case, self.ensemble.params, [step], levels=self.ensemble.levels,
                 progress=self.progress,
@@ -201,4 +215,5 @@ class Candidates:
         found = artefacts.judge(
             self.level(step).features, self.finest.features, self.ensemble.levels
         )
-        return [code for code in artefacts.CODES if found[code].any()]
+        counted = np.ones(self.ensemble.size, bool) if self.weights is None else self.weights > 0
+        return [code for code in artefacts.CODES if (found[code] & counted).any()]

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from errbudget.budget import allowance, passes, series, work
+from errbudget.budget import allowance, better_data, passes, series, work
 from errbudget.budget.build import Evidence, RunFacts, budget_json
 from errbudget.budget.passes import Candidates, Ensemble, ReferencePass
 from errbudget.budget.progress import Progress, as_progress
@@ -187,10 +187,15 @@ def run_case(
             "times": np.asarray(fit.counts.times, float),
             "counts": np.asarray(fit.counts.counts, float),
         }
-    better = None
+    clock.stage("better data", "what better data would buy")
     if joint is not None:
-        clock.stage("better data", "what better data would buy")
-        better = _better_data(case, joint, n_base, seed, passed, limits, recommendation, floor)
+        better = better_data.doubled_counts(
+            case, joint, n_base, seed, passed, limits, recommendation, floor
+        )
+    else:
+        better = better_data.per_input(
+            case, candidates, passed, sampled, iid, limits, floor, recommendation.step
+        )
     validation = None
     if case.counts is not None and fit is not None:
         clock.stage("validation", "comparing with the counts")
@@ -347,52 +352,6 @@ def with_fitted_nominal(case: Case, fit) -> Case:
         for name, p in case.parameters.items()
     }
     return replace(case, parameters=parameters)
-
-
-def _better_data(
-    case: Case, joint, n_base, seed, passed: ReferencePass, limits, recommendation,
-    floor: float,
-) -> dict:  # fmt: skip
-    """The budget again as if the counts were doubled: the fitted covariance halved.
-
-    Better data narrow the parameter spread, which shrinks the allowance for numerical
-    error: the adequate step may become finer.
-    """
-    design = design_for_case(case, joint.scaled(0.5), n_base, seed)
-    ensemble = passes.ensemble_for(
-        case, ensemble_params(case, design.values), design.independent_rows
-    )
-    order = get_scheme(case.scheme).order
-    again = passes.reference_pass(case, ensemble, order, passed.finer_step, passed.finest_step)
-    spreads = [
-        spread_summary(again.reference[q, design.independent_rows], case.budget.level)
-        for q in range(len(case.quantities))
-    ]
-    allowed = allowance.allowances(case, [s["sd"] for s in spreads], floor)
-    better = recommend(
-        case, Candidates(case, ensemble, again), again.reference, allowances=allowed,
-        limits=limits, scale=again.scale,
-    )  # fmt: skip
-    return {
-        "assumption": "twice as many counts of the same quality: the covariance of the fitted "
-        "parameters halved",
-        "recommended_step": {"value": better.step, "unit": case.time_unit},
-        "parameter_sd": {spec.name: spreads[q]["sd"] for q, spec in enumerate(case.quantities)},
-        "statement": _better_statement(case, recommendation.step, better),
-    }
-
-
-def _better_statement(case: Case, now: float | None, better) -> str:
-    then, unit = better.step, case.time_unit
-    if then is None:
-        return f"With twice as many counts no candidate step would qualify: {better.reason}."
-    if now is not None and then < now:
-        return (
-            f"With twice as many counts the parameter spread narrows and the coarsest "
-            f"adequate step would become {then:g} {unit} (now {now:g} {unit}): better "
-            "data demand a finer step."
-        )
-    return f"With twice as many counts the coarsest adequate step would be {then:g} {unit}."
 
 
 def _deeper_reference(

@@ -101,7 +101,7 @@ def judge_step(case: Case, candidates: Candidates, reference, step: float, allow
         if not np.isfinite(errors[q]).all():
             ratios.append(math.inf)
             continue
-        discretisation = float(np.percentile(errors[q], case.budget.percentile))
+        discretisation = candidates.percentile(errors[q], case.budget.percentile)
         numerical = discretisation + roundoff_bound(case, reference, q, step, scale)
         allowed = allowances[q]
         ratios.append(numerical / allowed if allowed > 0 else (0.0 if numerical == 0 else math.inf))
