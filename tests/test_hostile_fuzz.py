@@ -18,7 +18,6 @@ from test_cli import BUILTIN, DEMO_CASES, MARSH_COUNTS
 
 from errbudget.case import limits
 from errbudget.case.load import load_case
-from errbudget.case.parameters import NON_NEGATIVE, POSITIVE
 from errbudget.case.units import parse_quantity
 from errbudget.cli import main
 from errbudget.errors import InputError
@@ -197,12 +196,13 @@ def test_any_distribution_table_loads_finite_and_signed_or_is_refused(tmp_path_f
         draws = dist.ppf(np.array([p, 0.5, 1 - p]))
     assert np.all(np.isfinite(draws)) and np.all(np.abs(draws) <= limits.MAX_MAGNITUDE)
     assert math.isfinite(dist.spread())
-    if name in POSITIVE or name in NON_NEGATIVE:
+    sign = case.model.terms[name].sign
+    if sign is not None:
         # At most a negligible share of the distribution lies at or below zero, and nothing
         # at all unless it is a normal kept as written (see limits.NEGLIGIBLE_TAIL).
         assert float(dist.frozen().cdf(0.0)) < limits.NEGLIGIBLE_TAIL
         if dist.kind != "normal":
-            assert draws[0] > 0 if name in POSITIVE else draws[0] >= 0
+            assert draws[0] > 0 if sign == "positive" else draws[0] >= 0
 
 
 # --------------------------------------------------------------------- whole files

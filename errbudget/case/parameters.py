@@ -25,14 +25,6 @@ from errbudget.errors import InputError, did_you_mean
 from errbudget.laws import models
 
 TABLE_KEYS = ("value", "sd", "cv", "low", "high", "mode", "dist")
-# Parameters that must be strictly positive, by name, for the built-in laws.
-POSITIVE = {
-    "K": "a carrying capacity",
-    "N0": "an initial population",
-    "A": "an Allee threshold",
-    "theta": "a shape exponent",
-}
-NON_NEGATIVE = {"E": "a harvest rate", "H": "a removal rate"}
 
 
 @dataclass(frozen=True)
@@ -49,6 +41,7 @@ class Parameter:
     given: str
     dist: Distribution | None
     to_coherent: float = 1.0
+    rule: str | None = None  # what a sign-ruled parameter is ("a carrying capacity")
 
 
 def builtin_parameters(reader, model, table, population, time_unit) -> dict[str, Parameter]:
@@ -77,9 +70,9 @@ def builtin_parameters(reader, model, table, population, time_unit) -> dict[str,
         where = f"parameters.{name}"
         if name not in table:
             raise reader.fail(f"missing parameter {name!r} of the {model.form!r} law", where)
-        kind = models.POPULATION if name == "N0" else model.kinds[name]
-        parameter = _parameter(reader, name, table[name], units[kind], meanings[kind])
-        parameters[name] = _check_sign(reader, parameter, where)
+        term = model.terms[name]
+        parameter = _parameter(reader, name, table[name], units[term.kind], meanings[term.kind])
+        parameters[name] = _check_sign(reader, parameter, where, term)
     return parameters
 
 
@@ -116,7 +109,7 @@ def custom_model(reader, rate_text, table, population, time_unit):
         raise error.located(reader.source, "model.rate") from None
 
     initial = _parameter(reader, "N0", table["N0"], population, "a population level")
-    parameters = {"N0": _check_sign(reader, initial, "parameters.N0")}
+    parameters = {"N0": _check_sign(reader, initial, "parameters.N0", models.INITIAL)}
     for name in allowed:
         given_unit = _given_unit(reader, name, table[name])
         parameters[name] = _parameter(reader, name, table[name], given_unit, "this parameter")
@@ -343,8 +336,8 @@ def _check_draws(reader, dist: Distribution, where: str, unit: str) -> None:
         )
 
 
-def _check_sign(reader, parameter: Parameter, where: str) -> Parameter:
-    """The sign rules of :data:`POSITIVE` and :data:`NON_NEGATIVE`, on the whole support.
+def _check_sign(reader, parameter: Parameter, where: str, term: models.Term) -> Parameter:
+    """The sign rule of the law's ``term`` for this parameter, on the whole support.
 
     The nominal value and any bound given must obey the rule. A normal (or a normal bounded
     only above) that puts at least :data:`NEGLIGIBLE_TAIL` of its draws at or below zero is
@@ -352,11 +345,11 @@ def _check_sign(reader, parameter: Parameter, where: str) -> Parameter:
     said by ``check`` (see :meth:`Distribution.describe`) and kept in
     ``Distribution.truncated_share``.
     """
-    name = parameter.name
-    positive = name in POSITIVE
-    if not positive and name not in NON_NEGATIVE:
+    if term.sign is None:
         return parameter
-    rule = POSITIVE[name] if positive else NON_NEGATIVE[name]
+    positive = term.sign == "positive"
+    rule = term.meaning
+    parameter = replace(parameter, rule=rule)
     dist = parameter.dist
     given_low = dist.low if dist is not None and math.isfinite(dist.low) else parameter.nominal
     open_zero = dist is not None and dist.kind == "truncated-normal" and given_low == 0
@@ -396,7 +389,7 @@ def input_flags(parameters: dict[str, Parameter]) -> list[dict]:
     for p in parameters.values():
         if p.dist is None or p.dist.truncated_share < NOTEWORTHY_TAIL:
             continue
-        rule = POSITIVE.get(p.name) or NON_NEGATIVE.get(p.name)
+        rule = p.rule or "a parameter that must be positive"
         flags.append(
             {
                 "code": "truncated-at-zero",

@@ -51,6 +51,19 @@ class Equilibrium:
 
 
 @dataclass(frozen=True)
+class Term:
+    """One parameter of a built-in law: its dimension kind, what it means, its sign rule."""
+
+    kind: str
+    meaning: str
+    sign: str | None = None  # "positive", "non-negative" or None (any sign)
+
+
+# The initial population, a parameter of every law.
+INITIAL = Term(POPULATION, "an initial population", "positive")
+
+
+@dataclass(frozen=True)
 class GrowthModel:
     """A growth law.
 
@@ -70,6 +83,14 @@ class GrowthModel:
         params -> list of Equilibrium.
     exact : callable or None
         Closed-form solution N(t; N0, params), where one is known.
+    coherent : dict or None
+        Custom laws only: the checked expression and its factors to coherent root units
+        (keys expression, factors, t_factor, n_factor, out_factor), for the compiled engine.
+    rate_text : str or None
+        Built-in laws: the right-hand side in the custom-expression language, from which
+        ``rate``, ``d_dn`` and the compiled kernels are all made.
+    terms : dict of str to Term
+        Built-in laws: every parameter's kind, meaning and sign rule (N0 included).
     """
 
     form: str
@@ -79,119 +100,145 @@ class GrowthModel:
     d_dn: Callable[[float, Array, Params], Array]
     equilibria: Callable[[Params], list[Equilibrium]] = field(default=lambda p: [])
     exact: Callable[[Array, Array, Params], Array] | None = None
-    # Custom laws only: the checked expression and its factors to coherent root units
-    # (keys expression, factors, t_factor, n_factor, out_factor), for the compiled engine.
     coherent: dict | None = None
+    rate_text: str | None = None
+    terms: dict[str, Term] = field(default_factory=dict)
 
     @property
     def parameter_names(self) -> tuple[str, ...]:
         return tuple(self.kinds)
 
 
+def law(
+    form: str,
+    equation: str,
+    rate_text: str,
+    terms: dict[str, Term],
+    equilibria: Callable[[Params], list[Equilibrium]],
+    exact: Callable | None = None,
+) -> GrowthModel:
+    """A built-in law from its one declaration: the rate, written once in the expression
+    language (its numpy evaluation and its derivative d/dN come from that text, as do the
+    compiled kernels), the parameters with their kinds and sign rules, the equilibria and,
+    where one is known, the exact solution."""
+    from errbudget.laws.expression import parse_rate
+
+    expression = parse_rate(rate_text, tuple(terms))
+    return GrowthModel(
+        form,
+        equation,
+        {name: term.kind for name, term in terms.items()},
+        expression.evaluate,
+        expression.d_dN,
+        equilibria,
+        exact,
+        rate_text=rate_text,
+        terms={"N0": INITIAL, **terms},
+    )
+
+
 def _ones(p: Params) -> Array:
     return np.ones(np.broadcast(*p.values()).shape) if p else np.ones(())
 
 
+GROWTH = Term(RATE, "a growth rate")
+CAPACITY = Term(POPULATION, "a carrying capacity", "positive")
+
+
 def _exponential() -> GrowthModel:
-    return GrowthModel(
+    return law(
         "exponential",
         "dN/dt = r N",
-        {"r": RATE},
-        lambda t, n, p: p["r"] * n,
-        lambda t, n, p: p["r"] * np.ones_like(n),
+        "r * N",
+        {"r": GROWTH},
         lambda p: [Equilibrium("extinction", 0.0 * _ones(p))],
         lambda t, n0, p: n0 * np.exp(p["r"] * t),
     )
 
 
+def _logistic_exact(t, n0, p):
+    return p["K"] / (1 + (p["K"] / n0 - 1) * np.exp(-p["r"] * t))
+
+
 def _logistic() -> GrowthModel:
-    return GrowthModel(
+    return law(
         "logistic",
         "dN/dt = r N (1 - N/K)",
-        {"r": RATE, "K": POPULATION},
-        lambda t, n, p: p["r"] * n * (1 - n / p["K"]),
-        lambda t, n, p: p["r"] * (1 - 2 * n / p["K"]),
+        "r * N * (1 - N / K)",
+        {"r": GROWTH, "K": CAPACITY},
         lambda p: [Equilibrium("extinction", 0.0 * p["K"]), Equilibrium("K", p["K"] * _ones(p))],
-        lambda t, n0, p: p["K"] / (1 + (p["K"] / n0 - 1) * np.exp(-p["r"] * t)),
+        _logistic_exact,
     )
 
 
 def _gompertz() -> GrowthModel:
-    return GrowthModel(
+    return law(
         "gompertz",
         "dN/dt = r N ln(K/N)",
-        {"r": RATE, "K": POPULATION},
-        lambda t, n, p: p["r"] * n * np.log(p["K"] / n),
-        lambda t, n, p: p["r"] * (np.log(p["K"] / n) - 1),
+        "r * N * log(K / N)",
+        {"r": GROWTH, "K": CAPACITY},
         lambda p: [Equilibrium("K", p["K"] * _ones(p))],
         lambda t, n0, p: p["K"] * np.exp(np.log(n0 / p["K"]) * np.exp(-p["r"] * t)),
     )
 
 
 def _theta_logistic() -> GrowthModel:
-    return GrowthModel(
+    return law(
         "theta-logistic",
         "dN/dt = r N (1 - (N/K)^theta)",
-        {"r": RATE, "K": POPULATION, "theta": PURE},
-        lambda t, n, p: p["r"] * n * (1 - (n / p["K"]) ** p["theta"]),
-        lambda t, n, p: p["r"] * (1 - (1 + p["theta"]) * (n / p["K"]) ** p["theta"]),
+        "r * N * (1 - (N / K) ** theta)",
+        {"r": GROWTH, "K": CAPACITY, "theta": Term(PURE, "a shape exponent", "positive")},
         lambda p: [Equilibrium("extinction", 0.0 * p["K"]), Equilibrium("K", p["K"] * _ones(p))],
     )
 
 
-def _logistic_harvest() -> GrowthModel:
-    def equilibria(p: Params) -> list[Equilibrium]:
-        carrying = p["K"] * (1 - p["E"] / p["r"])
-        return [
-            Equilibrium("extinction", 0.0 * carrying),
-            Equilibrium("harvested level K(1 - E/r)", np.where(carrying > 0, carrying, np.nan)),
-        ]
+def _harvest_equilibria(p: Params) -> list[Equilibrium]:
+    carrying = p["K"] * (1 - p["E"] / p["r"])
+    return [
+        Equilibrium("extinction", 0.0 * carrying),
+        Equilibrium("harvested level K(1 - E/r)", np.where(carrying > 0, carrying, np.nan)),
+    ]
 
-    return GrowthModel(
+
+def _logistic_harvest() -> GrowthModel:
+    return law(
         "logistic-harvest",
         "dN/dt = r N (1 - N/K) - E N",
-        {"r": RATE, "K": POPULATION, "E": RATE},
-        lambda t, n, p: p["r"] * n * (1 - n / p["K"]) - p["E"] * n,
-        lambda t, n, p: p["r"] * (1 - 2 * n / p["K"]) - p["E"],
-        equilibria,
-        lambda t, n0, p: _logistic().exact(
+        "r * N * (1 - N / K) - E * N",
+        {"r": GROWTH, "K": CAPACITY, "E": Term(RATE, "a harvest rate", "non-negative")},
+        _harvest_equilibria,
+        lambda t, n0, p: _logistic_exact(
             t, n0, {"r": p["r"] - p["E"], "K": p["K"] * (1 - p["E"] / p["r"])}
         ),
     )
 
 
-def _logistic_removal() -> GrowthModel:
-    def equilibria(p: Params) -> list[Equilibrium]:
-        # r N (1 - N/K) = H  =>  N = K/2 (1 +/- sqrt(1 - 4H/(rK))); none when H > rK/4.
-        disc = 1 - 4 * p["H"] / (p["r"] * p["K"])
-        root = np.sqrt(np.where(disc >= 0, disc, np.nan))
-        return [
-            Equilibrium("lower (unstable) level", p["K"] / 2 * (1 - root)),
-            Equilibrium("upper (stable) level", p["K"] / 2 * (1 + root)),
-        ]
+def _removal_equilibria(p: Params) -> list[Equilibrium]:
+    # r N (1 - N/K) = H  =>  N = K/2 (1 +/- sqrt(1 - 4H/(rK))); none when H > rK/4.
+    disc = 1 - 4 * p["H"] / (p["r"] * p["K"])
+    root = np.sqrt(np.where(disc >= 0, disc, np.nan))
+    return [
+        Equilibrium("lower (unstable) level", p["K"] / 2 * (1 - root)),
+        Equilibrium("upper (stable) level", p["K"] / 2 * (1 + root)),
+    ]
 
-    return GrowthModel(
+
+def _logistic_removal() -> GrowthModel:
+    return law(
         "logistic-removal",
         "dN/dt = r N (1 - N/K) - H",
-        {"r": RATE, "K": POPULATION, "H": FLUX},
-        lambda t, n, p: p["r"] * n * (1 - n / p["K"]) - p["H"],
-        lambda t, n, p: p["r"] * (1 - 2 * n / p["K"]) * np.ones_like(n),
-        equilibria,
+        "r * N * (1 - N / K) - H",
+        {"r": GROWTH, "K": CAPACITY, "H": Term(FLUX, "a removal rate", "non-negative")},
+        _removal_equilibria,
     )
 
 
 def _allee() -> GrowthModel:
-    def d_dn(t: float, n: Array, p: Params) -> Array:
-        # f = r N (1 - N/K)(N/A - 1); product rule on the three factors.
-        r, k, a = p["r"], p["K"], p["A"]
-        return r * ((1 - n / k) * (n / a - 1) - n / k * (n / a - 1) + n * (1 - n / k) / a)
-
-    return GrowthModel(
+    return law(
         "allee",
         "dN/dt = r N (1 - N/K) (N/A - 1)",
-        {"r": RATE, "K": POPULATION, "A": POPULATION},
-        lambda t, n, p: p["r"] * n * (1 - n / p["K"]) * (n / p["A"] - 1),
-        d_dn,
+        "r * N * (1 - N / K) * (N / A - 1)",
+        {"r": GROWTH, "K": CAPACITY, "A": Term(POPULATION, "an Allee threshold", "positive")},
         lambda p: [
             Equilibrium("extinction", 0.0 * p["K"]),
             Equilibrium("Allee threshold A", p["A"] * _ones(p)),
@@ -200,6 +247,7 @@ def _allee() -> GrowthModel:
     )
 
 
+# Every built-in law: adding one means writing its factory above and naming it here.
 BUILT_IN: dict[str, Callable[[], GrowthModel]] = {
     "exponential": _exponential,
     "logistic": _logistic,
@@ -210,19 +258,8 @@ BUILT_IN: dict[str, Callable[[], GrowthModel]] = {
     "allee": _allee,
 }
 FORMS = (*BUILT_IN, "custom")
-
-# The right-hand side of each built-in law in the custom-expression language, written with
-# the same operations in the same order as its numpy lambda above. The compiled engine
-# (errbudget.solve.engine) builds its kernels from these through the expression whitelist.
-RATE_TEXT: dict[str, str] = {
-    "exponential": "r * N",
-    "logistic": "r * N * (1 - N / K)",
-    "gompertz": "r * N * log(K / N)",
-    "theta-logistic": "r * N * (1 - (N / K) ** theta)",
-    "logistic-harvest": "r * N * (1 - N / K) - E * N",
-    "logistic-removal": "r * N * (1 - N / K) - H",
-    "allee": "r * N * (1 - N / K) * (N / A - 1)",
-}
+# The right-hand side of each built-in law in the expression language (from its factory).
+RATE_TEXT: dict[str, str] = {form: make().rate_text for form, make in BUILT_IN.items()}
 
 
 def built_in(form: str, where: str = "model.form") -> GrowthModel:

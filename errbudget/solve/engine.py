@@ -6,7 +6,7 @@ gives the same states for binary64 runs. The kernels release the GIL and each th
 its own columns (members) of the output, so both cores are used; each member's arithmetic is
 the same whatever the thread count, so a parallel run equals a single-core run bit for bit.
 
-Built-in laws are compiled from their expression in :data:`errbudget.laws.models.RATE_TEXT`,
+Built-in laws are compiled from the rate written in their declaration (``rate_text``),
 custom laws from the checked tree of their
 :class:`~errbudget.laws.expression.RateExpression`, through the same whitelist. Without
 numba, :func:`kernel_for` returns None and the caller (:func:`errbudget.solve.ensemble.solve`)
@@ -63,11 +63,10 @@ def numba_module():
 def rate_spec(model) -> RateSpec | None:
     """The compilable description of a :class:`~errbudget.laws.models.GrowthModel`, or None."""
     from errbudget.laws import expression as expr
-    from errbudget.laws import models
 
-    if model.form in models.RATE_TEXT:
+    if model.rate_text is not None:  # a built-in law: its one written rate
         names = model.parameter_names
-        tree = expr.parse_rate(models.RATE_TEXT[model.form], names).tree
+        tree = expr.parse_rate(model.rate_text, names).tree
         return RateSpec(tree, tuple(names), (1.0,) * len(names))
     if model.form != "custom":
         return None
