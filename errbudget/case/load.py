@@ -9,11 +9,12 @@ from __future__ import annotations
 
 import hashlib
 import tomllib
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
+from errbudget.case.budget_table import BudgetSpec, budget_spec
 from errbudget.case.correlations import describe_correlations, read_correlations
 from errbudget.case.distributions import Distribution
 from errbudget.case.files import read_regular_file
@@ -21,8 +22,6 @@ from errbudget.case.limits import (
     LADDER_HALVINGS,
     MAX_CASE_BYTES,
     MAX_FINEST_STEPS,
-    MIN_SAMPLES,
-    is_design_size,
 )
 from errbudget.case.parameters import Parameter, builtin_parameters, custom_model
 from errbudget.case.reader import CaseReader
@@ -54,35 +53,8 @@ TOP_KEYS = (
 MODEL_KEYS = ("form", "unit", "rate")
 SIMULATION_KEYS = ("scheme", "step", "horizon")
 QUANTITY_KEYS = ("name", "kind", "at", "level")
-BUDGET_KEYS = (
-    "fraction",
-    "samples",
-    "seed",
-    "percentile",
-    "level",
-    "memory_limit",
-    "time_limit",
-    "resolution",
-)
 COUNTS_KEYS = ("file", "time", "time_unit", "count", "error", "fit", "start")
 ERROR_MODELS = ("poisson", "negative-binomial", "lognormal", "normal")
-DEFAULT_MEMORY_LIMIT_MB = 4096  # resource ceiling for one run, overridable per case
-DEFAULT_TIME_LIMIT_S = 60.0  # a run predicted to take longer is refused unless asked for
-HALF_AN_INDIVIDUAL = 0.5  # default resolution of a count [individuals]
-
-
-@dataclass(frozen=True)
-class BudgetSpec:
-    fraction: float = 0.1
-    samples: int = 1024
-    seed: int = 1
-    percentile: float = 95.0
-    level: float = 0.9
-    memory_limit_mb: float = DEFAULT_MEMORY_LIMIT_MB
-    time_limit_s: float = DEFAULT_TIME_LIMIT_S
-    # Smallest difference of a population that can change a decision [population unit];
-    # None: half an individual for count units, else RESOLUTION_SHARE of the largest state.
-    resolution: float | None = None
 
 
 @dataclass(frozen=True)
@@ -224,7 +196,7 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
         parameters = builtin_parameters(reader, model, params_table, population, time_unit)
 
     quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon)
-    budget = _budget(reader, data.get("budget", {}), population)
+    budget = budget_spec(reader, data.get("budget", {}), population)
     counts = _counts(reader, data.get("counts"), time_unit, parameters)
     fitted = counts.fit if counts is not None else ()
     correlations = read_correlations(reader, data.get("correlations"), parameters, fitted)
@@ -333,115 +305,6 @@ def _quantities(reader, entries, population, time_unit, horizon) -> tuple[Quanti
             raise reader.fail('"level" is only used with kind = "time-to"', f"{where}.level")
         specs.append(QuantitySpec(name, kind, at, level))
     return tuple(specs)
-
-
-def _budget(reader, table, population) -> BudgetSpec:
-    spec = _budget_values(reader, table)
-    if isinstance(table, dict) and "resolution" in table:
-        value = reader.quantity(
-            table["resolution"], "budget.resolution", population, "a population difference"
-        )
-        if not value > 0:
-            raise reader.fail("the resolution must be positive", "budget.resolution")
-        spec = replace(spec, resolution=value)
-    elif is_count(population):
-        spec = replace(spec, resolution=HALF_AN_INDIVIDUAL)
-    if not is_design_size(spec.samples):
-        raise reader.fail(
-            f"{spec.samples} is not a power of two of at least {MIN_SAMPLES}; accepted: a "
-            "power of two such as 512 or 1024 (the Sobol design needs one)",
-            "budget.samples",
-        )
-    return spec
-
-
-def _budget_values(reader, table) -> BudgetSpec:
-    table = reader.table(table, "budget", BUDGET_KEYS)
-    defaults = BudgetSpec()
-    return BudgetSpec(
-        fraction=float(
-            reader.number(
-                table,
-                "fraction",
-                "budget",
-                defaults.fraction,
-                low=0,
-                high=1,
-                accepted="; accepted: 0 < fraction <= 1",
-            )
-        ),
-        samples=reader.number(
-            table,
-            "samples",
-            "budget",
-            defaults.samples,
-            low=0,
-            integer=True,
-            accepted="; accepted: a power of two such as 512 or 1024",
-        ),
-        seed=reader.number(
-            table,
-            "seed",
-            "budget",
-            defaults.seed,
-            low=0,
-            integer=True,
-            low_open=False,
-            accepted="; accepted: an integer >= 0",
-        ),
-        percentile=float(
-            reader.number(
-                table,
-                "percentile",
-                "budget",
-                defaults.percentile,
-                low=0,
-                high=100,
-                accepted="; accepted: 0 < p <= 100",
-            )
-        ),
-        level=float(
-            reader.number(
-                table,
-                "level",
-                "budget",
-                defaults.level,
-                low=0,
-                high=0.999,
-                accepted="; accepted: 0 < level < 1",
-            )
-        ),
-        memory_limit_mb=float(
-            reader.number(
-                table,
-                "memory_limit",
-                "budget",
-                defaults.memory_limit_mb,
-                low=0,
-                accepted="; accepted: megabytes, e.g. 2048",
-            )
-        ),
-        time_limit_s=_time_limit(reader, table, defaults.time_limit_s),
-    )
-
-
-def _time_limit(reader, table, default: float) -> float:
-    """``[budget] time_limit``: a time such as "90 s" or "5 min", or a number of seconds."""
-    if "time_limit" not in table or not isinstance(table["time_limit"], str):
-        return float(
-            reader.number(
-                table,
-                "time_limit",
-                "budget",
-                default,
-                low=0,
-                accepted='; accepted: a time such as "90 s" or "5 min", or seconds',
-            )
-        )
-    seconds = reader.quantity(table["time_limit"], "budget.time_limit", ureg.second, "a time")
-    if not seconds > 0:
-        raise reader.fail("the time limit must be positive", "budget.time_limit")
-    return seconds
 
 
 def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
