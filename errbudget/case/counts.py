@@ -19,7 +19,6 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
 from errbudget.errors import InputError, did_you_mean
 
@@ -215,6 +214,9 @@ def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[t
             where="line 1",
         )
     delimiter = max(_DELIMITERS, key=first_line.count)
+    # pandas is imported only when a counts file is read (``errbudget check`` never does).
+    import pandas as pd
+
     try:
         # Everything as text, blank lines kept, so that row i of the table is line i + 1.
         table = pd.read_csv(

@@ -11,7 +11,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 KINDS = ("normal", "lognormal", "uniform", "triangular", "truncated-normal")
 
@@ -45,6 +44,10 @@ class Distribution:
 
     def frozen(self):
         """The equivalent frozen ``scipy.stats`` distribution."""
+        # Imported here, not at module level: ``errbudget check`` reads distributions but
+        # never draws from them, and SciPy's stats costs most of a second to import.
+        from scipy import stats
+
         if self.kind == "normal":
             return stats.norm(loc=self.nominal, scale=self.sd)
         if self.kind == "lognormal":
