@@ -2,7 +2,8 @@
 
 The figures use the object-oriented API (``matplotlib.figure.Figure`` with an explicit
 ``FigureCanvasAgg``): nothing is registered with pyplot, the global backend of a host
-program is left alone, and each figure is cleared once written.
+program is left alone, and a figure is freed with its last reference once written
+(clearing it first would only rebuild every axis, which costs more than drawing it).
 """
 
 from __future__ import annotations
@@ -40,6 +41,9 @@ RC = {
     "axes.titlesize": 9,
     "axes.titleweight": "bold",
     "axes.titlelocation": "left",
+    # Titles sit just above their axes (no axis has ticks on top); a fixed position also
+    # spares matplotlib measuring every axis to place each title, on every draw.
+    "axes.titley": 1.0,
     "xtick.color": INK,
     "ytick.color": INK,
     "text.color": INK,
@@ -69,12 +73,7 @@ def skipped(key: str, title: str, note: str) -> Figure:
 def to_svg(fig: MplFigure, key: str, alt: str) -> Markup:
     """Serialise ``fig`` as inline SVG with role="img", a <title> and ids unique to ``key``."""
     buffer = io.StringIO()
-    try:
-        fig.savefig(
-            buffer, format="svg", bbox_inches="tight", pad_inches=0.04, metadata={"Date": None}
-        )
-    finally:
-        fig.clear()
+    fig.savefig(buffer, format="svg", bbox_inches="tight", pad_inches=0.04, metadata={"Date": None})
     text = buffer.getvalue()
     text = text[text.index("<svg") :]
     text = re.sub(r"<metadata>.*?</metadata>", "", text, flags=re.S)
