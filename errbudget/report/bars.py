@@ -5,6 +5,7 @@ from __future__ import annotations
 import matplotlib
 import numpy as np
 
+from errbudget.report.figure import Figure, skipped
 from errbudget.report.fmt import finite, plain
 from errbudget.report.plotting import (
     BLUE,
@@ -15,11 +16,9 @@ from errbudget.report.plotting import (
     PURPLE,
     RC,
     VERMILLION,
-    Figure,
     bar_panel,
     new_figure,
     quantity_title,
-    skipped,
     to_svg,
 )
 

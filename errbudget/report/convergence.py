@@ -7,6 +7,7 @@ import math
 import matplotlib
 import numpy as np
 
+from errbudget.report.figure import Figure, skipped
 from errbudget.report.fmt import finite, plain
 from errbudget.report.fmt import step as step_text
 from errbudget.report.plotting import (
@@ -16,11 +17,9 @@ from errbudget.report.plotting import (
     INK,
     RC,
     VERMILLION,
-    Figure,
     new_figure,
     plain_ticks,
     quantity_title,
-    skipped,
     to_svg,
 )
 

@@ -15,8 +15,8 @@ from collections.abc import Callable
 
 from errbudget.report.bars import budget_bars, sobol
 from errbudget.report.convergence import convergence
+from errbudget.report.figure import Figure, skipped
 from errbudget.report.forecast import forecast
-from errbudget.report.plotting import Figure, skipped
 from errbudget.report.roundoff import roundoff
 from errbudget.report.stability import limit_bars, stability_map
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 import matplotlib
 import numpy as np
 
+from errbudget.report.figure import Figure, skipped
 from errbudget.report.fmt import finite, plain
 from errbudget.report.fmt import step as step_text
 from errbudget.report.plotting import (
@@ -21,10 +22,8 @@ from errbudget.report.plotting import (
     RC,
     SKY,
     VERMILLION,
-    Figure,
     clean,
     new_figure,
-    skipped,
     to_svg,
 )
 

@@ -11,7 +11,6 @@ from __future__ import annotations
 import io
 import re
 from collections.abc import Callable
-from dataclasses import dataclass
 
 import numpy as np
 from markupsafe import Markup, escape
@@ -52,22 +51,6 @@ RC = {
     "legend.frameon": False,
     "legend.fontsize": 7.5,
 }
-
-
-@dataclass(frozen=True)
-class Figure:
-    """One figure of the report: inline SVG (ours, trusted), alt text and caption."""
-
-    key: str
-    title: str
-    caption: str
-    alt: str
-    svg: Markup | None = None
-    note: str | None = None
-
-
-def skipped(key: str, title: str, note: str) -> Figure:
-    return Figure(key, title, caption="", alt="", note=note)
 
 
 def to_svg(fig: MplFigure, key: str, alt: str) -> Markup:

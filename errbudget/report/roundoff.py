@@ -9,6 +9,7 @@ from __future__ import annotations
 import matplotlib
 import numpy as np
 
+from errbudget.report.figure import Figure, skipped
 from errbudget.report.fmt import finite, plain
 from errbudget.report.fmt import step as step_text
 from errbudget.report.plotting import (
@@ -21,13 +22,11 @@ from errbudget.report.plotting import (
     RC,
     SKY,
     VERMILLION,
-    Figure,
     bar_panel,
     clean,
     new_figure,
     plain_ticks,
     quantity_title,
-    skipped,
     to_svg,
 )
 

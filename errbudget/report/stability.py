@@ -14,6 +14,7 @@ import matplotlib
 import numpy as np
 from matplotlib.legend_handler import HandlerTuple
 
+from errbudget.report.figure import Figure, skipped
 from errbudget.report.fmt import finite, number, plain
 from errbudget.report.fmt import step as step_text
 from errbudget.report.plotting import (
@@ -25,12 +26,10 @@ from errbudget.report.plotting import (
     RC,
     SKY,
     VERMILLION,
-    Figure,
     bar_panel,
     clean,
     new_figure,
     plain_ticks,
-    skipped,
     to_svg,
 )
 
