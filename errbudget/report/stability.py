@@ -238,7 +238,7 @@ def stability_map(budget: dict, series: dict) -> Figure | None:
             f"{step_text(rec, unit_t, why='none').text}.{_grouping(members, name)}"
         )
         svg = to_svg(fig, key, alt)
-    caption = _map_caption(data, name, members, oscillation is not None)
+    caption = _map_caption(data, name, members, oscillation)
     return Figure(key, title, caption, alt, svg)
 
 
@@ -260,28 +260,30 @@ def _grouping(members: Limits, name: str) -> str:
     return f" Drawn as the median and range of the members in each of {SLICES} slices of {name}."
 
 
-def _map_caption(data: dict, name: str, members: Limits, has_oscillation: bool) -> str:
+def _map_caption(data: dict, name: str, members: Limits, oscillation: Limits | None) -> str:
     rho = finite(data.get("rho"))
     depends = f" (Spearman rank correlation {plain(rho, 2)})" if rho is not None else ""
     if members.low is None:
         opening = "Each dot is one ensemble member: the largest step"
-        squares = "each member's largest step without oscillation around the equilibrium."
     else:
         opening = (
             f"Each dot is the median over the ensemble members whose {name} falls in one of "
             f"{SLICES} equal slices of its range (the shaded band around the line spans "
             "their range): the largest step"
         )
-        squares = "the same for the largest step without oscillation around the equilibrium."
-    oscillation = (
-        f" Squares: {squares}"
-        if has_oscillation
-        else " No member has a finite no-oscillation limit with this scheme."
-    )
+    if oscillation is None:
+        squares = " No member has a finite no-oscillation limit with this scheme."
+    elif oscillation.low is None:
+        squares = " Squares: each member's largest step without oscillation around the equilibrium."
+    else:
+        squares = (
+            " Squares: the median and range in each slice of the largest step without "
+            "oscillation around the equilibrium."
+        )
     return (
         f"{opening} for which the scheme keeps the "
         f"model's stable equilibrium stable, against {name}, the input these limits depend "
-        f"on most{depends}.{oscillation} Red: steps above the strictest member's limit, "
+        f"on most{depends}.{squares} Red: steps above the strictest member's limit, "
         f"unstable for at least one member. Blue band: the central 90 % of the ensemble's "
         f"{name}. How to read it: a step below every member's limit, that is below the red "
         "region, is stable for the whole ensemble; the case's step (solid line) and the "
