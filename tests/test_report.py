@@ -10,6 +10,7 @@ from __future__ import annotations
 import copy
 import functools
 import http.server
+import io
 import json
 import math
 import os
@@ -23,6 +24,7 @@ from html.parser import HTMLParser
 from pathlib import Path
 from types import SimpleNamespace
 
+import matplotlib
 import numpy as np
 import pytest
 
@@ -30,6 +32,7 @@ import errbudget
 from errbudget.outputs.files import dumps
 from errbudget.report import render_html
 from errbudget.report.fmt import plain
+from errbudget.report.plotting import PAD_IN, RC, new_figure, tight_box
 from errbudget.report.stability import SLICES, member_limits
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -662,6 +665,26 @@ def test_members_summarised_by_slices_keep_every_extreme():
     assert got.low.min() == y.min() and got.high.max() == y.max()  # the strictest member shows
     few = member_limits(x[:50], y[:50], np.ones(50, dtype=bool), edges)
     assert few.low is None and np.array_equal(few.x, np.sort(x[:50]))
+
+
+def test_the_crop_measured_without_drawing_is_matplotlibs_own():
+    # plotting.tight_box measures the box savefig(bbox_inches="tight") would crop to, without
+    # the measuring draw; with text and a legend outside the axes the two must agree.
+    with matplotlib.rc_context(RC):
+        fig, axes = new_figure(2.2, 1, 2)
+        for ax in axes[0]:
+            ax.plot([1, 10, 100], [3, 1, 2], "o-", label="a long label for the legend below")
+            ax.set_xscale("log")
+            ax.set_title("a title")
+            ax.text(1.0, 0.5, " a note beside the axes", transform=ax.transAxes)
+        axes[0, 0].legend(loc="upper center", bbox_to_anchor=(0.5, -0.3))
+        fig.tight_layout()
+        box = tight_box(fig)
+        drawn = io.StringIO()
+        fig.savefig(drawn, format="svg", bbox_inches="tight", pad_inches=PAD_IN)
+    size = re.search(r'<svg[^>]*width="([\d.]+)pt" height="([\d.]+)pt"', drawn.getvalue())
+    assert float(size.group(1)) == pytest.approx(box.width * 72, abs=1e-3)  # [pt]
+    assert float(size.group(2)) == pytest.approx(box.height * 72, abs=1e-3)
 
 
 def test_counts_and_quantity_marks_on_the_forecast(counted, report):
