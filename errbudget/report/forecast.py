@@ -29,17 +29,15 @@ from errbudget.report.plotting import (
 
 # a white box keeps line labels legible where they cross the ensemble band
 LABEL_BOX = {"facecolor": "white", "alpha": 0.75, "edgecolor": "none", "pad": 0.8}
+# The run's time series this figure draws (see Budget.series).
+SERIES = ("times", "band", "error_p95", "nominal_coarse", "fine_times", "nominal_fine")
 
 
 def forecast(budget: dict, series: dict) -> Figure:
     """Ensemble band, nominal runs at the case's step and accurate, numerical error band."""
     key, title = "forecast", "The forecast over time"
     try:
-        arrays = {
-            name: clean(series.get(name))
-            for name in ("times", "band", "error_p95", "nominal_coarse", "fine_times")
-        }
-        arrays["nominal_fine"] = clean(series.get("nominal_fine"))
+        arrays = {name: clean(series.get(name)) for name in SERIES}
     except (TypeError, ValueError):
         return skipped(key, title, "not drawn: the time series of the run are malformed")
     times, band = arrays["times"], arrays["band"]
