@@ -12,6 +12,7 @@ from pathlib import Path
 import numpy as np
 import pint
 import pytest
+from conftest import CRAYFISH_COUNTS, MARSH_COUNTS
 
 from errbudget import load_case, run_case
 from errbudget.case.load import describe
@@ -20,52 +21,9 @@ from errbudget.case.units import ureg
 SAMPLES = 64  # base sample size of the Sobol design; a power of two, small for speed
 REL = 1e-12  # the same case in days and in weeks must agree to this relative tolerance
 
-# The example case of DESIGN.md §3, verbatim apart from the comments.
-DESIGN_EXAMPLE = """\
-title = "Upper marsh crayfish pond, autumn harvest plan"
-
-[model]
-form = "logistic-harvest"
-unit = "crayfish"
-
-[parameters]
-r  = { value = "0.06 / day", sd = "0.01 / day" }
-K  = { value = "9000 crayfish", low = "7500 crayfish", high = "10500 crayfish" }
-E  = "0.004 / day"
-N0 = { value = "400 crayfish", cv = 0.2, dist = "lognormal" }
-
-[simulation]
-scheme = "euler"
-step = "7 day"
-horizon = "200 day"
-
-[[quantity]]
-name = "stock at harvest"
-kind = "value"
-at = "200 day"
-
-[[quantity]]
-name = "days to 6000"
-kind = "time-to"
-level = "6000 crayfish"
-
-[budget]
-fraction = 0.1
-samples = 1024
-seed = 1
-
-[counts]
-file = "marsh-counts.csv"
-time = "day"
-time_unit = "day"
-count = "count"
-error = "poisson"
-fit = ["r", "K", "N0"]
-"""
-
-# Invented field counts for the example (a pond filling up); only read by the fit, not by
-# load_case, but the contract says the file sits beside the case.
-MARSH_COUNTS = "day,count\n0,410\n28,1130\n56,2640\n84,4870\n112,6420\n140,7390\n"
+# The example case of DESIGN.md §3, verbatim apart from the comments. Its counts file
+# (MARSH_COUNTS) is only read by the fit, not by load_case, but it sits beside the case.
+DESIGN_EXAMPLE = CRAYFISH_COUNTS.replace("samples = 64", "samples = 1024")
 
 
 def write(folder: Path, name: str, text: str) -> Path:

@@ -17,70 +17,29 @@ from pathlib import Path
 
 import jsonschema
 import pytest
+from conftest import (
+    CRAYFISH,
+    CRAYFISH_COUNTS,
+    CRAYFISH_CUSTOM,
+    DEMO_CASES,
+    EXIT_INPUT,
+    K_LINE,
+    MARSH_COUNTS,
+    REPO,
+    assert_refused_without_writing,
+    one_error_line,
+    run_args,
+    strict_json,
+    without_clock,
+)
 
 import errbudget
 from errbudget import load_case, run_case
 from errbudget.case.units import ensure_count_units, format_unit, parse_unit, ureg
 from errbudget.cli import main
 
-REPO = Path(__file__).resolve().parents[1]
-DEMO_CASES = sorted((REPO / "cases").glob("*.toml"))
 SCHEMA = json.loads((REPO / "errbudget" / "outputs" / "schema" / "budget-1.json").read_text())
 SAMPLES = "64"  # base sample size of the Sobol design; a power of two, small for speed
-EXIT_INPUT = 2
-SENTINEL_JSON = b'{"an": "earlier budget, must stay as it is"}\n'
-SENTINEL_HISTORY = b'{"an": "earlier history line"}\n'
-
-BUILTIN = """\
-title = "Upper marsh crayfish pond, autumn harvest plan"
-
-[model]
-form = "logistic-harvest"
-unit = "crayfish"
-
-[parameters]
-r  = { value = "0.06 / day", sd = "0.01 / day" }
-K  = { value = "9000 crayfish", low = "7500 crayfish", high = "10500 crayfish" }
-E  = "0.004 / day"
-N0 = { value = "400 crayfish", cv = 0.2, dist = "lognormal" }
-
-[simulation]
-scheme = "euler"
-step = "7 day"
-horizon = "200 day"
-
-[[quantity]]
-name = "stock at harvest"
-kind = "value"
-at = "200 day"
-
-[[quantity]]
-name = "days to 6000"
-kind = "time-to"
-level = "6000 crayfish"
-
-[budget]
-fraction = 0.1
-samples = 64
-seed = 1
-"""
-
-CUSTOM = BUILTIN.replace(
-    'form = "logistic-harvest"', 'form = "custom"\nrate = "r*N*(1 - N/K) - E*N"'
-)
-
-COUNTS = (
-    BUILTIN
-    + """
-[counts]
-file = "marsh-counts.csv"
-time = "day"
-time_unit = "day"
-count = "count"
-error = "poisson"
-fit = ["r", "K", "N0"]
-"""
-)
 
 CUSTOM_UNITS = """\
 [model]
@@ -102,8 +61,7 @@ name = "largest"
 kind = "peak"
 """
 
-BASES = {"builtin": BUILTIN, "custom": CUSTOM, "counts": COUNTS}
-MARSH_COUNTS = "day,count\n0,410\n28,1130\n56,2640\n84,4870\n112,6420\n140,7390\n"  # invented
+BASES = {"builtin": CRAYFISH, "custom": CRAYFISH_CUSTOM, "counts": CRAYFISH_COUNTS}
 
 
 @dataclass(frozen=True)
@@ -122,7 +80,6 @@ class Bad:
         return base.replace(self.old, self.new)
 
 
-K_LINE = 'K  = { value = "9000 crayfish", low = "7500 crayfish", high = "10500 crayfish" }'
 MODEL_TABLE = '[model]\nform = "logistic-harvest"\nunit = "crayfish"\n'
 RATE = 'rate = "r*N*(1 - N/K) - E*N"'
 
@@ -376,43 +333,10 @@ def _write_bad(folder: Path, bad: Bad) -> Path:
     return path
 
 
-def _run(args: list[str], out: Path) -> list[str]:
-    return ["run", *args, "--out", str(out), "--samples", SAMPLES, "--quiet"]
-
-
-def _one_error_line(capsys) -> str:
-    captured = capsys.readouterr()
-    assert captured.out == ""
-    assert captured.err.endswith("\n") and captured.err.count("\n") == 1, captured.err
-    assert "Traceback" not in captured.err
-    return captured.err.rstrip("\n")
-
-
-def _assert_refused_without_writing(capsys, tmp_path, args: list[str], stem: str) -> str:
-    """Run twice: into a missing --out folder (stays missing), then over earlier outputs
-    (left byte for byte). Returns the one stderr line, identical both times."""
-    out = tmp_path / "out"
-    assert main(_run(args, out)) == EXIT_INPUT
-    first = _one_error_line(capsys)
-    assert not out.exists()
-
-    folder = out / stem
-    folder.mkdir(parents=True)
-    (folder / "budget.json").write_bytes(SENTINEL_JSON)
-    (folder / "history.jsonl").write_bytes(SENTINEL_HISTORY)
-    before = sorted(p.name for p in folder.iterdir())
-    assert main(_run(args, out)) == EXIT_INPUT
-    assert _one_error_line(capsys) == first
-    assert (folder / "budget.json").read_bytes() == SENTINEL_JSON
-    assert (folder / "history.jsonl").read_bytes() == SENTINEL_HISTORY
-    assert sorted(p.name for p in folder.iterdir()) == before
-    return first
-
-
 @pytest.mark.parametrize("bad", BAD_CASES.values(), ids=BAD_CASES.keys())
 def test_bad_case_exits_2_with_one_line_naming_file_and_key(capsys, tmp_path, bad):
     path = _write_bad(tmp_path, bad)
-    line = _assert_refused_without_writing(capsys, tmp_path, [str(path)], path.stem)
+    line = assert_refused_without_writing(capsys, tmp_path, [str(path)], path.stem)
     prefix = f"errbudget: error: {path}, {bad.where}: "
     assert line.startswith(prefix), line
     for fragment in bad.says:
@@ -420,15 +344,15 @@ def test_bad_case_exits_2_with_one_line_naming_file_and_key(capsys, tmp_path, ba
 
     # `check` refuses the same case with the same line.
     assert main(["check", str(path)]) == EXIT_INPUT
-    assert _one_error_line(capsys) == line
+    assert one_error_line(capsys) == line
 
 
 def test_malformed_toml_names_the_line(capsys, tmp_path):
-    text = BUILTIN.replace('horizon = "200 day"', 'horizon = "200 day')
+    text = CRAYFISH.replace('horizon = "200 day"', 'horizon = "200 day')
     line_number = text.splitlines().index('horizon = "200 day') + 1
     path = tmp_path / "bad-case.toml"
     path.write_text(text)
-    line = _assert_refused_without_writing(capsys, tmp_path, [str(path)], path.stem)
+    line = assert_refused_without_writing(capsys, tmp_path, [str(path)], path.stem)
     assert line.startswith(f"errbudget: error: {path}: invalid TOML: "), line
     assert f"line {line_number}" in line
 
@@ -436,7 +360,7 @@ def test_malformed_toml_names_the_line(capsys, tmp_path):
 def test_custom_rate_with_wrong_units(capsys, tmp_path):
     path = tmp_path / "bad-case.toml"
     path.write_text(CUSTOM_UNITS)
-    line = _assert_refused_without_writing(capsys, tmp_path, [str(path)], path.stem)
+    line = assert_refused_without_writing(capsys, tmp_path, [str(path)], path.stem)
     # r [1/day] * N [crayfish] * N [crayfish] is crayfish²/day, not crayfish/day.
     assert line == (
         f"errbudget: error: {path}, model.rate: the rate comes out in "
@@ -446,7 +370,7 @@ def test_custom_rate_with_wrong_units(capsys, tmp_path):
 
 def test_missing_case_file(capsys, tmp_path):
     path = tmp_path / "bad-case.toml"
-    line = _assert_refused_without_writing(capsys, tmp_path, [str(path)], path.stem)
+    line = assert_refused_without_writing(capsys, tmp_path, [str(path)], path.stem)
     assert line == f"errbudget: error: {path}: case file not found"
 
 
@@ -466,24 +390,24 @@ def test_missing_case_file(capsys, tmp_path):
 )
 def test_bad_option(capsys, tmp_path, option, says):
     path = tmp_path / "good.toml"
-    path.write_text(BUILTIN)
-    line = _assert_refused_without_writing(capsys, tmp_path, [str(path), *option], path.stem)
+    path.write_text(CRAYFISH)
+    line = assert_refused_without_writing(capsys, tmp_path, [str(path), *option], path.stem)
     assert line == f"errbudget: error: command line: {says}"
 
 
 def test_no_command_is_bad_input(capsys):
     assert main([]) == EXIT_INPUT
-    assert _one_error_line(capsys).startswith("errbudget: error: command line: choose a command")
+    assert one_error_line(capsys).startswith("errbudget: error: command line: choose a command")
 
 
 def test_one_bad_case_stops_every_case_before_anything_runs(capsys, tmp_path):
     good = tmp_path / "good.toml"
-    good.write_text(BUILTIN)
+    good.write_text(CRAYFISH)
     bad = tmp_path / "bad.toml"
-    bad.write_text(BUILTIN.replace('scheme = "euler"', 'scheme = "eular"'))
+    bad.write_text(CRAYFISH.replace('scheme = "euler"', 'scheme = "eular"'))
     out = tmp_path / "out"
-    assert main(_run([str(good), str(bad)], out)) == EXIT_INPUT
-    assert _one_error_line(capsys).startswith(f"errbudget: error: {bad}, simulation.scheme: ")
+    assert main(run_args([str(good), str(bad)], out)) == EXIT_INPUT
+    assert one_error_line(capsys).startswith(f"errbudget: error: {bad}, simulation.scheme: ")
     assert not out.exists()
 
 
@@ -504,7 +428,7 @@ def _subprocess(args: list[str], cwd: Path) -> subprocess.CompletedProcess:
 def test_bad_case_through_python_m_has_no_traceback(tmp_path):
     bad = BAD_CASES["unknown-top-level-key"]
     _write_bad(tmp_path, bad)
-    done = _subprocess(_run(["bad-case.toml"], Path("out")), tmp_path)
+    done = _subprocess(run_args(["bad-case.toml"], Path("out")), tmp_path)
     assert done.returncode == EXIT_INPUT
     assert done.stdout == ""
     assert "Traceback" not in done.stderr
@@ -525,19 +449,19 @@ def test_version_through_python_m(tmp_path):
 
 def test_samples_not_a_power_of_two_in_the_case_names_file_and_key(capsys, tmp_path):
     path = tmp_path / "bad-case.toml"
-    path.write_text(BUILTIN.replace("samples = 64", "samples = 100"))
+    path.write_text(CRAYFISH.replace("samples = 64", "samples = 100"))
     assert main(["check", str(path)]) == EXIT_INPUT
-    line = _one_error_line(capsys)
+    line = one_error_line(capsys)
     assert line.startswith(f"errbudget: error: {path}, budget.samples: ")
     assert "power of two" in line
 
 
 def test_samples_option_not_a_power_of_two_names_the_option(capsys, tmp_path):
     path = tmp_path / "good.toml"
-    path.write_text(BUILTIN)
+    path.write_text(CRAYFISH)
     out = tmp_path / "out"
     assert main(["run", str(path), "--out", str(out), "--samples", "100", "--quiet"]) == EXIT_INPUT
-    line = _one_error_line(capsys)
+    line = one_error_line(capsys)
     assert not out.exists()
     assert line.startswith("errbudget: error: command line: argument --samples: "), line
 
@@ -545,24 +469,8 @@ def test_samples_option_not_a_power_of_two_names_the_option(capsys, tmp_path):
 # --------------------------------------------------------------------------- success
 
 
-def _strict_json(text: str):
-    def refuse(constant):
-        raise AssertionError(f"budget.json holds {constant}")
-
-    return json.loads(text, parse_constant=refuse)
-
-
-def _without_clock(data: dict) -> dict:
-    """A copy without the clock readings, all kept under ``run``: timestamp, elapsed_seconds,
-    stages (seconds per stage), prediction and cost (measured speeds)."""
-    data = json.loads(json.dumps(data))
-    for key in ("timestamp", "elapsed_seconds", "stages", "prediction", "cost"):
-        data["run"].pop(key, None)
-    return data
-
-
 def _valid_budget(folder: Path) -> dict:
-    data = _strict_json((folder / "budget.json").read_text(encoding="utf-8"))
+    data = strict_json((folder / "budget.json").read_text(encoding="utf-8"))
     jsonschema.validate(data, SCHEMA, cls=jsonschema.Draft202012Validator)
     assert data["schema"] == "errbudget.budget/1"
     return data
@@ -598,12 +506,14 @@ def test_demo_case_runs_and_writes_outputs(capsys, tmp_path, case_path):
     assert html.escape(raw["title"]) in page
     history = (folder / "history.jsonl").read_text(encoding="utf-8").splitlines()
     assert len(history) == 1
-    assert _strict_json(history[0])["case_sha256"] == budget["case"]["sha256"]
+    assert strict_json(history[0])["case_sha256"] == budget["case"]["sha256"]
 
 
-def test_second_run_appends_history_and_is_reproducible(capsys, tmp_path, monkeypatch):
+def test_second_run_appends_history_and_is_reproducible(
+    capsys, tmp_path, monkeypatch, report_without_figures
+):
     monkeypatch.chdir(tmp_path)
-    (tmp_path / "pond.toml").write_text(BUILTIN)
+    (tmp_path / "pond.toml").write_text(CRAYFISH)
     folder = tmp_path / "reports" / "pond"
 
     # First run with the default --out, which is reports/.
@@ -625,7 +535,7 @@ def test_second_run_appends_history_and_is_reproducible(capsys, tmp_path, monkey
     assert len(lines) == 2
     since = second["since_last"]
     assert since is not None
-    assert since["previous_time"] == _strict_json(lines[0])["time"]
+    assert since["previous_time"] == strict_json(lines[0])["time"]
     assert since["case_changed"] is False
     assert since["verdict"] == {
         "before": first["verdict"]["adequate"],
@@ -638,16 +548,16 @@ def test_second_run_appends_history_and_is_reproducible(capsys, tmp_path, monkey
 
     # Reproducibility: the same numbers apart from the clock (and measured speeds).
     second["since_last"] = None
-    assert _without_clock(second) == _without_clock(first)
+    assert without_clock(second) == without_clock(first)
 
 
 def test_same_seed_and_samples_differ_only_in_the_run_clock(tmp_path):
     # Through the API (no HTML rendering) to keep the test fast; the CLI adds only
     # run.timestamp and since_last to this dictionary.
     path = tmp_path / "pond.toml"
-    path.write_text(BUILTIN)
+    path.write_text(CRAYFISH)
     first, second = (run_case(load_case(path), samples=int(SAMPLES)).to_dict() for _ in "ab")
-    assert _without_clock(first) == _without_clock(second)
+    assert without_clock(first) == without_clock(second)
 
 
 @pytest.mark.parametrize("case_path", DEMO_CASES, ids=[p.stem for p in DEMO_CASES])

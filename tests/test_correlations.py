@@ -11,8 +11,11 @@ import math
 
 import numpy as np
 import pytest
+from conftest import CRAYFISH as BUILTIN
+from conftest import CRAYFISH_COUNTS as COUNTS
+from conftest import MARSH_COUNTS
+from conftest import assert_refused_without_writing as _assert_refused_without_writing
 from scipy import stats
-from test_cli import BUILTIN, COUNTS, MARSH_COUNTS, _assert_refused_without_writing
 
 from errbudget.case.distributions import Distribution
 from errbudget.case.load import describe, load_case

@@ -5,22 +5,24 @@ from __future__ import annotations
 
 import json
 import os
+import pickle
 import subprocess
 import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
-from test_cli import (
-    BUILTIN,
-    COUNTS,
+from conftest import (
+    CRAYFISH,
+    CRAYFISH_COUNTS,
     EXIT_INPUT,
     REPO,
-    _one_error_line,
-    _strict_json,
-    _without_clock,
+    one_error_line,
+    strict_json,
+    without_clock,
 )
 
+import errbudget
 import errbudget.outputs.files
 import errbudget.report
 from errbudget.cli import main
@@ -34,7 +36,7 @@ def _run_ok(capsys, case: Path, out: Path, *extra: str) -> dict:
     assert main(["run", str(case), "--out", str(out), *QUICK, *extra]) == 0
     captured = capsys.readouterr()
     assert captured.err == "", captured.err  # no warnings or tracebacks leak to the user
-    return _strict_json((out / case.stem / "budget.json").read_text(encoding="utf-8"))
+    return strict_json((out / case.stem / "budget.json").read_text(encoding="utf-8"))
 
 
 def _all_numbers_finite(value) -> bool:
@@ -56,7 +58,7 @@ def test_overflow_at_an_unstable_step_is_flagged_not_crashed(capsys, tmp_path):
     # out while the accurate solution grows to K.
     case = tmp_path / "pond.toml"
     case.write_text(
-        BUILTIN.replace(
+        CRAYFISH.replace(
             'r  = { value = "0.06 / day", sd = "0.01 / day" }',
             'r  = { value = "50 / day", sd = "1 / day" }',
         )
@@ -72,7 +74,7 @@ def test_fit_that_fails_falls_back_to_the_prior_spread(capsys, tmp_path):
     (tmp_path / "marsh-counts.csv").write_text("day,count\n0,0\n28,0\n56,0\n84,0\n112,0\n")
     case = tmp_path / "pond.toml"
     case.write_text(
-        COUNTS.replace(
+        CRAYFISH_COUNTS.replace(
             'r  = { value = "0.06 / day", sd = "0.01 / day" }', 'r  = "0.06 / day"'
         ).replace(
             'K  = { value = "9000 crayfish", low = "7500 crayfish", high = "10500 crayfish" }',
@@ -86,7 +88,7 @@ def test_fit_that_fails_falls_back_to_the_prior_spread(capsys, tmp_path):
     assert data["fit"]["converged"] is False
     assert _all_numbers_finite(data)
     history = (tmp_path / "out" / "pond" / "history.jsonl").read_text().splitlines()
-    assert len(history) == 1 and _strict_json(history[0])
+    assert len(history) == 1 and strict_json(history[0])
 
 
 def test_singular_information_falls_back_to_the_bootstrap():
@@ -177,11 +179,13 @@ def test_priors_separate_what_the_counts_cannot(capsys, tmp_path):
 
 
 # --------------------------------------------------------------------- nothing lost
+# These tests break the writing of the outputs; the budget and the figures are beside the
+# point, so the case's budget is computed once (quick_cli) and the page drawn without figures.
 
 
 def _earlier_outputs(capsys, tmp_path) -> tuple[Path, Path, dict[str, bytes]]:
     case = tmp_path / "pond.toml"
-    case.write_text(BUILTIN)
+    case.write_text(CRAYFISH)
     out = tmp_path / "out"
     _run_ok(capsys, case, out)
     folder = out / "pond"
@@ -192,7 +196,7 @@ def _assert_unchanged(folder: Path, before: dict[str, bytes]) -> None:
     assert {p.name: p.read_bytes() for p in folder.iterdir()} == before
 
 
-def test_failed_rendering_leaves_earlier_outputs(capsys, tmp_path, monkeypatch):
+def test_failed_rendering_leaves_earlier_outputs(capsys, tmp_path, monkeypatch, quick_cli):
     case, out, before = _earlier_outputs(capsys, tmp_path)
     assert {"budget.json", "budget.html", "history.jsonl"} <= set(before)
 
@@ -206,7 +210,9 @@ def test_failed_rendering_leaves_earlier_outputs(capsys, tmp_path, monkeypatch):
 
 
 @pytest.mark.parametrize("failing_call", [1, 2])
-def test_failed_write_leaves_the_earlier_set(capsys, tmp_path, monkeypatch, failing_call):
+def test_failed_write_leaves_the_earlier_set(
+    capsys, tmp_path, monkeypatch, failing_call, quick_cli
+):
     # Before the fix, budget.json was renamed into place before budget.html was written, so
     # a failure on the second file left a new budget.json beside an old budget.html.
     case, out, before = _earlier_outputs(capsys, tmp_path)
@@ -222,11 +228,11 @@ def test_failed_write_leaves_the_earlier_set(capsys, tmp_path, monkeypatch, fail
     monkeypatch.setattr(errbudget.outputs.files.tempfile, "mkstemp", flaky)
     # A full disk is a fault of the environment: exit code 2 and one line naming the file.
     assert main(["run", str(case), "--out", str(out), *QUICK]) == EXIT_INPUT
-    assert "the disk is full" in _one_error_line(capsys)
+    assert "the disk is full" in one_error_line(capsys)
     _assert_unchanged(out / "pond", before)  # also: no temporary left behind
 
 
-def test_failed_rename_leaves_the_earlier_set(capsys, tmp_path, monkeypatch):
+def test_failed_rename_leaves_the_earlier_set(capsys, tmp_path, monkeypatch, quick_cli):
     case, out, before = _earlier_outputs(capsys, tmp_path)
     real = os.replace
 
@@ -237,7 +243,7 @@ def test_failed_rename_leaves_the_earlier_set(capsys, tmp_path, monkeypatch):
 
     monkeypatch.setattr(errbudget.outputs.files.os, "replace", broken_second)
     assert main(["run", str(case), "--out", str(out), *QUICK]) == EXIT_INPUT
-    line = _one_error_line(capsys)
+    line = one_error_line(capsys)
     assert "budget.html" in line and "input/output error" in line
     # budget.json is renamed first in the set, so it may be new; this is the documented
     # window of write_all_atomic. The history is appended only after all renames.
@@ -247,11 +253,32 @@ def test_failed_rename_leaves_the_earlier_set(capsys, tmp_path, monkeypatch):
     assert not [name for name in after if name.endswith(".tmp")]
 
 
+# Each process runs the command line on a budget computed beforehand, read from a pickle by a
+# stand-in for errbudget.budget.run (so the process loads neither SciPy nor the engine), and
+# draws the page without figures: the test is about the lock on the history, not the numbers.
+ONE_BUDGET = """
+import functools, pickle, sys, types
+with open(sys.argv[1], "rb") as stream:
+    data, series = pickle.load(stream)
+stand_in = types.ModuleType("errbudget.budget.run")
+stand_in.run_case = lambda case, **kwargs: types.SimpleNamespace(
+    to_dict=lambda: data, series=series
+)
+sys.modules["errbudget.budget.run"] = stand_in
+import errbudget.report
+errbudget.report.render_html = functools.partial(
+    errbudget.report.render_html, include_figures=False
+)
+from errbudget.cli import main
+sys.exit(main(sys.argv[2:]))
+"""
+
+
 def _subprocess_run(args: list[str], cwd: Path) -> subprocess.Popen:
     env = dict(os.environ)
     env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(REPO), env.get("PYTHONPATH")]))
     return subprocess.Popen(
-        [sys.executable, "-m", "errbudget", *args],
+        [sys.executable, "-c", ONE_BUDGET, *args],
         cwd=cwd,
         env=env,
         stdout=subprocess.PIPE,
@@ -262,32 +289,35 @@ def _subprocess_run(args: list[str], cwd: Path) -> subprocess.Popen:
 
 
 def test_two_concurrent_runs_append_two_whole_history_lines(tmp_path):
-    (tmp_path / "pond.toml").write_text(BUILTIN)
-    args = ["run", "pond.toml", "--out", "out", *QUICK]
+    (tmp_path / "pond.toml").write_text(CRAYFISH)
+    budget = errbudget.run_case(errbudget.load_case(tmp_path / "pond.toml"), samples=16)
+    (tmp_path / "budget.pickle").write_bytes(pickle.dumps((budget.to_dict(), budget.series)))
+    args = ["budget.pickle", "run", "pond.toml", "--out", "out", *QUICK]
     runs = [_subprocess_run(args, tmp_path) for _ in range(2)]
     for run in runs:
         _, err = run.communicate(timeout=180)
         assert run.returncode == 0, err
     lines = (tmp_path / "out" / "pond" / "history.jsonl").read_text().splitlines()
     assert len(lines) == 2
-    assert all(_strict_json(line)["schema"] == "errbudget.history/1" for line in lines)
-    _strict_json((tmp_path / "out" / "pond" / "budget.json").read_text())
+    assert all(strict_json(line)["schema"] == "errbudget.history/1" for line in lines)
+    # The run that took the lock second compared itself with the first one's whole line.
+    last = strict_json((tmp_path / "out" / "pond" / "budget.json").read_text())
+    assert last["since_last"] is not None
 
 
 # --------------------------------------------------------------------- reproducibility
 
 
-def test_counts_case_is_reproducible_bit_for_bit(capsys, tmp_path):
-    out_a, out_b = tmp_path / "a", tmp_path / "b"
-    for out in (out_a, out_b):
-        assert main(["run", str(PERCH), "--out", str(out), "--samples", "64", "--quiet"]) == 0
-    capsys.readouterr()
+def test_counts_case_is_reproducible_bit_for_bit():
+    # Through the API and the budget.json writer (the HTML adds nothing to the numbers).
+    case = errbudget.load_case(PERCH)
     first, second = (
-        _strict_json((out / PERCH.stem / "budget.json").read_text()) for out in (out_a, out_b)
+        strict_json(errbudget.outputs.files.dumps(errbudget.run_case(case, samples=16).to_dict()))
+        for _ in "ab"
     )
     assert first["fit"] is not None
     # json round trip keeps every float's 17 significant digits: equality is bit for bit.
-    assert _without_clock(first) == _without_clock(second)
+    assert without_clock(first) == without_clock(second)
 
 
 # --------------------------------------------------------------------- hostile text
@@ -297,7 +327,7 @@ HOSTILE = "<img src=x onerror=alert(1)>"
 
 def test_report_escapes_title_and_quantity_name(capsys, tmp_path):
     case = tmp_path / "pond.toml"
-    text = BUILTIN.replace(
+    text = CRAYFISH.replace(
         '"Upper marsh crayfish pond, autumn harvest plan"', json.dumps(HOSTILE)
     ).replace('name = "stock at harvest"', f"name = {json.dumps(HOSTILE + ' q')}")
     case.write_text(text)
@@ -316,8 +346,8 @@ def test_counts_symlink_out_of_the_case_folder_is_refused(capsys, tmp_path):
     folder.mkdir()
     (folder / "marsh-counts.csv").symlink_to(outside / "secret.csv")
     case = folder / "pond.toml"
-    case.write_text(COUNTS)
+    case.write_text(CRAYFISH_COUNTS)
     assert main(["check", str(case)]) == EXIT_INPUT
-    line = _one_error_line(capsys)
+    line = one_error_line(capsys)
     assert line.startswith(f"errbudget: error: {case}, counts.file: "), line
     assert "must stay inside the case's folder" in line

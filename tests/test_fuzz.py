@@ -11,9 +11,14 @@ import random
 import re
 import tomllib
 
+from conftest import (
+    CRAYFISH,
+    CRAYFISH_COUNTS,
+    DEMO_CASES,
+    MARSH_COUNTS,
+)
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from test_cli import BUILTIN, COUNTS, DEMO_CASES, MARSH_COUNTS
 
 from errbudget.case.counts import read_counts
 from errbudget.case.load import load_case
@@ -61,7 +66,7 @@ def _toml(document: dict) -> str:
 
 # --------------------------------------------------------------------- loader fuzz
 
-BASE_DOCS = [tomllib.loads(BUILTIN), tomllib.loads(COUNTS)] + [
+BASE_DOCS = [tomllib.loads(CRAYFISH), tomllib.loads(CRAYFISH_COUNTS)] + [
     tomllib.loads(p.read_text(encoding="utf-8")) for p in DEMO_CASES
 ]
 KEYS = sorted(

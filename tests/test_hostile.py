@@ -29,8 +29,11 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import pytest
+from conftest import CRAYFISH as BUILTIN
+from conftest import CRAYFISH_CUSTOM as CUSTOM
+from conftest import EXIT_INPUT, MARSH_COUNTS, REPO
+from conftest import one_error_line as _one_error_line
 from scipy import stats
-from test_cli import BUILTIN, CUSTOM, EXIT_INPUT, MARSH_COUNTS, REPO, _one_error_line
 
 import errbudget.budget.run
 import errbudget.outputs.files

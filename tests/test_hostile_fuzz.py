@@ -10,11 +10,13 @@ from __future__ import annotations
 
 import math
 import re
+from pathlib import Path
 
 import numpy as np
+from conftest import CRAYFISH as BUILTIN
+from conftest import DEMO_CASES, MARSH_COUNTS
 from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
-from test_cli import BUILTIN, DEMO_CASES, MARSH_COUNTS
 
 from errbudget.case import limits
 from errbudget.case.load import load_case
@@ -278,8 +280,7 @@ def test_mutated_case_file_loads_or_is_refused_and_check_never_fails_inside(
     tmp_path_factory, capsys, data
 ):
     folder = tmp_path_factory.mktemp("files")
-    (folder / "marsh-counts.csv").write_text(MARSH_COUNTS)
-    (folder / "perch-reservoir-counts.csv").write_text(MARSH_COUNTS)
+    _counts_beside(folder)
     path = folder / "case.toml"
     path.write_bytes(data)
     try:
@@ -299,10 +300,16 @@ def test_mutated_case_file_loads_or_is_refused_and_check_never_fails_inside(
     assert "Traceback" not in captured.err
 
 
+def _counts_beside(folder: Path) -> None:
+    """The counts files the sources name, beside them: the DESIGN.md case's and the demos'."""
+    (folder / "marsh-counts.csv").write_text(MARSH_COUNTS)
+    for path in DEMO_CASES[0].parent.glob("*.csv"):
+        (folder / path.name).write_bytes(path.read_bytes())
+
+
 def test_the_fuzz_sources_load(tmp_path):
     # The mutants start from loadable cases, so a refusal is the mutation's doing.
-    (tmp_path / "marsh-counts.csv").write_text(MARSH_COUNTS)
-    (tmp_path / "perch-reservoir-counts.csv").write_text(MARSH_COUNTS)
+    _counts_beside(tmp_path)
     for index, source in enumerate(SOURCES):
         path = tmp_path / f"case{index}.toml"
         path.write_bytes(source)

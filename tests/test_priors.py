@@ -294,7 +294,7 @@ def test_counts_that_contradict_the_prior_are_flagged(tmp_path):
     # All-zero counts of a stock whose priors say r ~ N(0.06, 0.01) /day and N0 ~ 400 +- 80:
     # the posterior must move r and N0 far into their priors' tails (zero counts need a tiny
     # stock), which the flag reports instead of a silent fit.
-    from test_cli import COUNTS
+    from conftest import CRAYFISH_COUNTS as COUNTS
 
     (tmp_path / "marsh-counts.csv").write_text("day,count\n0,0\n28,0\n56,0\n84,0\n112,0\n")
     (tmp_path / "pond.toml").write_text(COUNTS)

@@ -10,6 +10,7 @@ from __future__ import annotations
 import copy
 import functools
 import http.server
+import io
 import json
 import math
 import os
@@ -23,12 +24,16 @@ from html.parser import HTMLParser
 from pathlib import Path
 from types import SimpleNamespace
 
+import matplotlib
 import numpy as np
 import pytest
 
 import errbudget
 from errbudget.outputs.files import dumps
 from errbudget.report import render_html
+from errbudget.report.fmt import plain
+from errbudget.report.plotting import PAD_IN, RC, new_figure, tight_box
+from errbudget.report.stability import SLICES, member_limits
 
 ROOT = Path(__file__).resolve().parents[1]
 CASE = ROOT / "cases" / "crayfish-pond.toml"
@@ -250,8 +255,11 @@ def test_title_with_markup_is_escaped(report, tmp_path):
     )
     case = errbudget.load_case(path)
     assert case.title == hostile
-    budget = errbudget.run_case(case, samples=SAMPLES)
-    html = render_html(budget.to_dict(), budget.series, case.text)
+    # The run only copies the title into budget.json; the figures never show it (the whole
+    # command line with this title is tested in test_faults.py).
+    data = copy.deepcopy(report.data)
+    data["case"]["title"] = case.title
+    html = render_html(data, report.budget.series, case.text, include_figures=False)
     assert "<script" not in html.lower()
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
     assert element_text(html, "case-title") == hostile  # shown as text, not dropped
@@ -606,6 +614,77 @@ def test_stability_map_survives_non_finite_members(report):
     assert f"of {kept} ensemble members" in alt
     assert "No member has a finite no-oscillation limit" in caption
     assert "Spearman" not in caption and "nan" not in alt.lower().split()
+
+
+def _figure_svg(html: str, key: str) -> str:
+    return re.search(rf'<figure id="fig-{key}">.*?</figure>', html, flags=re.S).group(0)
+
+
+def test_stability_map_of_a_big_ensemble_draws_a_few_hundred_markers(report):
+    info = report.budget.series["stability"]
+    rng = np.random.default_rng(3)
+    n = 5000
+    values = rng.normal(np.mean(info["values"]), np.std(info["values"]), n)
+    # Invented limits that fall with the input and scatter with the others, as real ones do.
+    stable = 2.0 / np.abs(values) * np.exp(0.05 * rng.standard_normal(n))
+    big = dict(info, values=values, stable=stable, monotone=stable / 2)
+    html = render_html(report.data, dict(report.budget.series, stability=big), report.case.text)
+    svg = _figure_svg(html, "stability")
+    markers = svg.count("<use ")  # matplotlib writes each marker as one <use> of its shape
+    assert markers <= 2 * SLICES + 60  # two series, a slice's median each, and the ticks
+    assert len(svg) < 150_000  # bytes; each member as a marker took about 1.2 MB
+    _, alt, caption = _figure(html, "stability")
+    # The numbers in the text are still over every member, not over the slices.
+    assert (
+        f"of {n} ensemble members runs from {plain(stable.min())} to {plain(stable.max())}" in alt
+    )
+    assert f"goes from {plain(values.min())} to {plain(values.max())}" in alt
+    assert f"one of {SLICES} equal slices" in caption and "Squares:" in caption
+    # A small ensemble is drawn member by member: the stable and the no-oscillation limits.
+    small = _figure_svg(report.html, "stability")
+    shown = int(np.isfinite(np.asarray(info["stable"], dtype=float)).sum())
+    has_monotone = info["monotone"] is not None and np.isfinite(info["monotone"]).any()
+    assert small.count("<use ") >= shown * (2 if has_monotone else 1)
+    assert "Each dot is one ensemble member" in _figure(report.html, "stability")[2]
+
+
+def test_members_summarised_by_slices_keep_every_extreme():
+    rng = np.random.default_rng(11)
+    x = rng.lognormal(size=10_000)
+    y = 1.0 / x * np.exp(0.1 * rng.standard_normal(x.size))
+    edges = np.linspace(x.min(), x.max(), SLICES + 1)
+    got = member_limits(x, y, np.ones(x.size, dtype=bool), edges)
+    # The same summary computed slice by slice with plain masks (the last slice is closed).
+    expected = []
+    for k in range(SLICES):
+        upper = x <= edges[k + 1] if k == SLICES - 1 else x < edges[k + 1]
+        m = (x >= edges[k]) & upper
+        if m.any():
+            expected.append((np.median(x[m]), np.median(y[m]), y[m].min(), y[m].max()))
+    np.testing.assert_allclose(np.array([got.x, got.y, got.low, got.high]).T, expected)
+    assert got.low.min() == y.min() and got.high.max() == y.max()  # the strictest member shows
+    few = member_limits(x[:50], y[:50], np.ones(50, dtype=bool), edges)
+    assert few.low is None and np.array_equal(few.x, np.sort(x[:50]))
+
+
+def test_the_crop_measured_without_drawing_is_matplotlibs_own():
+    # plotting.tight_box measures the box savefig(bbox_inches="tight") would crop to, without
+    # the measuring draw; with text and a legend outside the axes the two must agree.
+    with matplotlib.rc_context(RC):
+        fig, axes = new_figure(2.2, 1, 2)
+        for ax in axes[0]:
+            ax.plot([1, 10, 100], [3, 1, 2], "o-", label="a long label for the legend below")
+            ax.set_xscale("log")
+            ax.set_title("a title")
+            ax.text(1.0, 0.5, " a note beside the axes", transform=ax.transAxes)
+        axes[0, 0].legend(loc="upper center", bbox_to_anchor=(0.5, -0.3))
+        fig.tight_layout()
+        box = tight_box(fig)
+        drawn = io.StringIO()
+        fig.savefig(drawn, format="svg", bbox_inches="tight", pad_inches=PAD_IN)
+    size = re.search(r'<svg[^>]*width="([\d.]+)pt" height="([\d.]+)pt"', drawn.getvalue())
+    assert float(size.group(1)) == pytest.approx(box.width * 72, abs=1e-3)  # [pt]
+    assert float(size.group(2)) == pytest.approx(box.height * 72, abs=1e-3)
 
 
 def test_counts_and_quantity_marks_on_the_forecast(counted, report):

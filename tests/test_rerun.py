@@ -21,7 +21,7 @@ def _run(case: Path, out: Path) -> dict:
     return json.loads((out / case.stem / "budget.json").read_text())
 
 
-def test_rerun_after_new_counts(tmp_path):
+def test_rerun_after_new_counts(tmp_path, report_without_figures):
     for name in ("perch-reservoir.toml", "perch-reservoir-counts.csv"):
         shutil.copy(CASES / name, tmp_path / name)
     case, out = tmp_path / "perch-reservoir.toml", tmp_path / "reports"

@@ -12,7 +12,7 @@ from errbudget.cli import main
 CASES = Path(__file__).resolve().parent.parent / "cases"
 
 
-def test_csv_tables_carry_the_numbers_of_budget_json(tmp_path):
+def test_csv_tables_carry_the_numbers_of_budget_json(tmp_path, report_without_figures):
     assert (
         main(
             [

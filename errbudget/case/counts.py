@@ -212,6 +212,8 @@ def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[t
     import pandas as pd  # loaded on first use: a refused case never needs it
 
     delimiter = max(_DELIMITERS, key=first_line.count)
+    # pandas is imported only when a counts file is read (``errbudget check`` never does).
+
     try:
         # Everything as text, blank lines kept, so that row i of the table is line i + 1.
         table = pd.read_csv(

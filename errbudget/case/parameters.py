@@ -8,7 +8,6 @@ parameter in the unit it was written in and checks the rate expression's units i
 from __future__ import annotations
 
 import math
-import warnings
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -315,11 +314,10 @@ def _parameter(reader, name, entry, unit, meaning) -> Parameter:
 
 
 def _draws(dist: Distribution) -> tuple[np.ndarray, float]:
-    """The smallest, middle and largest draw the design can make, and the spread."""
-    p = SMALLEST_DESIGN_PROBABILITY
-    with np.errstate(all="ignore"), warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # scipy warns on extreme tails; the values are checked
-        return dist.ppf(np.array([p, 0.5, 1 - p])), dist.spread()
+    """The smallest, middle and largest draw the design can make (or bounds on them), and
+    the spread (or a bound on it); closed forms, no SciPy."""
+    low, high = dist.extremes(SMALLEST_DESIGN_PROBABILITY)
+    return np.array([low, dist.nominal, high]), dist.spread_bound()
 
 
 def _check_draws(reader, dist: Distribution, where: str, unit: str) -> None:
@@ -359,8 +357,7 @@ def _check_sign(reader, parameter: Parameter, where: str, term: models.Term) -> 
         raise reader.fail(f"{rule} {verb}, got {parameter.given}", where)
     if dist is None or dist.kind not in ("normal", "truncated-normal") or dist.low > 0:
         return parameter
-    with np.errstate(all="ignore"):
-        below = float(dist.frozen().cdf(0.0))
+    below = dist.share_at_or_below_zero()
     if below >= NEGLIGIBLE_TAIL:
         dist = Distribution(
             "truncated-normal",
@@ -371,7 +368,7 @@ def _check_sign(reader, parameter: Parameter, where: str, term: models.Term) -> 
             truncated_share=below,
         )
         _check_draws(reader, dist, where, parameter.unit)
-        if positive and not dist.ppf(SMALLEST_DESIGN_PROBABILITY) > 0:
+        if positive and not dist.extremes(SMALLEST_DESIGN_PROBABILITY)[0] > 0:
             raise reader.fail(
                 f"{rule} must be positive, but this normal, even truncated at zero, draws "
                 f'zero; give a smaller sd, or a lognormal (dist = "lognormal"), got '

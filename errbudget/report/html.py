@@ -13,7 +13,8 @@ from pathlib import Path
 import jinja2
 from markupsafe import Markup
 
-from errbudget.report import context, figures, plotting
+from errbudget.report import context
+from errbudget.report.figure import skipped
 
 HERE = Path(__file__).parent
 TEMPLATE = "budget.html.j2"
@@ -62,8 +63,10 @@ def render_html(budget: dict, series: dict, case_text: str, *, include_figures: 
     """
     page = context.build(budget, case_text)
     if include_figures:
+        from errbudget.report import figures  # matplotlib is loaded only to draw figures
+
         page["figures"] = figures.all_figures(budget, series)
     else:
-        page["figures"] = [plotting.skipped("all", "Figures", "left out of this render")]
+        page["figures"] = [skipped("all", "Figures", "left out of this render")]
     page["css"] = _stylesheet()
     return _environment().get_template(TEMPLATE).render(**page)
