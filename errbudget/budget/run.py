@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -27,6 +28,7 @@ from errbudget.estimates import artefacts, ladder, roundoff, stability
 from errbudget.estimates.drivers import drivers
 from errbudget.estimates.errors import discretisation_errors
 from errbudget.estimates.richardson import richardson
+from errbudget.solve import engine
 from errbudget.solve.ensemble import ensemble_params, nominal_params
 from errbudget.solve.stream import stream
 from errbudget.solve.tableaux import get_scheme
@@ -122,6 +124,12 @@ def run_case(
         if joint is not None:
             case = with_fitted_nominal(case, fit)
 
+    # The round-off runs (one member, numpy in three arithmetics, mostly Python) go on beside
+    # the ensemble passes, whose compiled loop releases the interpreter.
+    background = ThreadPoolExecutor(1, thread_name_prefix="errbudget-roundoff")
+    rounding_job = background.submit(roundoff.measure, case, case.step)
+    background.shutdown(wait=False)
+
     clock.stage("ladder", "choosing the refinement ladder")
     chosen = ladder.build(case)
     flags.extend(_ladder_flags(case, chosen, scheme.order))
@@ -167,7 +175,7 @@ def run_case(
     found_drivers = (
         drivers(errors, sampled) if design is not None else [None] * len(case.quantities)
     )
-    rounding = roundoff.measure(case, case.step)
+    rounding = rounding_job.result()
     limits = _limits(case, scheme, ensemble)
 
     floor = allowance.resolution(case, passed.scale)
@@ -336,11 +344,19 @@ def _unsettled_indices(case: Case, indices: list[dict]) -> list[dict]:
 
 
 def _spreads(case: Case, design, reference, iid, seed) -> tuple[list[dict], list[dict]]:
-    """Per quantity: the forecast spread on the reference values, and the Sobol indices."""
-    spreads, indices = [], []
-    for q in range(len(case.quantities)):
-        spreads.append(spread_summary(reference[q, iid], case.budget.level))
-        indices.append(sobol_indices(design, reference[q], seed=seed) if design else {})
+    """Per quantity: the forecast spread on the reference values, and the Sobol indices.
+
+    The quantities' indices are estimated at the same time on the engine's threads (numpy
+    releases the lock in the bootstrap's array work); each has its own seeded resampling.
+    """
+    spreads = [
+        spread_summary(reference[q, iid], case.budget.level) for q in range(len(case.quantities))
+    ]
+    if design is None:
+        return spreads, [{} for _ in case.quantities]
+    with ThreadPoolExecutor(max(1, min(engine.THREADS, len(case.quantities)))) as pool:
+        indices = list(pool.map(lambda q: sobol_indices(design, reference[q], seed=seed),
+                                range(len(case.quantities))))  # fmt: skip
     return spreads, indices
 
 

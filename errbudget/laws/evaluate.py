@@ -59,7 +59,8 @@ def value_tree(node: ast.AST) -> Evaluator:
 
         def binary(t, n, p):
             a, b = left(t, n, p), right(t, n, p)
-            return _keep_weak(ufunc(a, b), a, b)
+            out = ufunc(a, b)
+            return float(out) if type(a) in _WEAK and type(b) in _WEAK else out
 
         return binary
     assert isinstance(node, ast.Call) and isinstance(node.func, ast.Name)
@@ -202,6 +203,15 @@ def _dual_call(node: ast.Call) -> Dual:
 
 def finish(out: Value, n: np.ndarray, inputs: Mapping[str, Any]) -> np.ndarray:
     """Broadcast ``out`` to the shape of N in a float dtype, never aliasing an input."""
+    kind = getattr(out, "dtype", None)
+    usual = kind is not None and kind == n.dtype and kind.kind == "f" and np.shape(out) == n.shape
+    # The usual case, at once: a fresh result of N's shape and type (a numpy scalar for a
+    # 0-d N), not one of the inputs themselves.
+    if usual and (
+        not isinstance(out, np.ndarray)
+        or (out is not n and all(out is not value for value in inputs.values()))
+    ):
+        return out
     dtype = np.result_type(out, n)
     if not np.issubdtype(dtype, np.inexact):
         dtype = np.dtype(np.float64)

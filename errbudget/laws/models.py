@@ -128,7 +128,7 @@ def law(
         form,
         equation,
         {name: term.kind for name, term in terms.items()},
-        expression.evaluate,
+        expression.quick,  # the steppers set numpy's error state themselves
         expression.d_dN,
         equilibria,
         exact,

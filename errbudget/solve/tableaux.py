@@ -171,7 +171,8 @@ def integrate(
     size = y.size
     p = {name: np.asarray(value, dtype=dtype) for name, value in params.items()}
     out = np.empty((n_steps + 1, size), dtype=dtype)
-    if size == 1 and np.dtype(dtype) == np.longdouble:
+    single = size == 1 and np.dtype(dtype) == np.longdouble
+    if single:
         # One member in long double (the round-off reference runs): the same operations on
         # numpy scalars, several times faster than on one-element arrays. (float32 stays on
         # arrays: numpy's float32 scalar power is not the array ufunc's.)
@@ -200,10 +201,15 @@ def integrate(
                 if b[i] != 0:
                     increment = increment + b[i] * k[i]
             stepped = y + h * increment
-            if absorbing:
-                reached = np.reshape((y != 0) & (stepped <= 0), -1) & (first < 0)
+            if absorbing and single:  # one member: plain comparisons on scalars
+                if y != 0 and stepped <= 0 and first[0] < 0:
+                    first[0], last_value[0] = n + 1, stepped
+                if y == 0 or stepped <= 0:
+                    stepped = zero
+            elif absorbing:
+                reached = ((y != 0) & (stepped <= 0)) & (first < 0)
                 first = np.where(reached, n + 1, first)
-                last_value = np.where(reached, np.reshape(stepped, -1), last_value)
+                last_value = np.where(reached, stepped, last_value)
                 stepped = np.where((y == 0) | (stepped <= 0), zero, stepped)
             y = stepped
             out[n + 1] = y

@@ -17,13 +17,12 @@ Saltelli, A., Annoni, P., Azzini, I., Campolongo, F., Ratto, M., Tarantola, S. (
 from __future__ import annotations
 
 import math
-import warnings
 from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
-from SALib.analyze import sobol as salib_analyze
 
 from errbudget.case.distributions import Distribution
+from errbudget.uncertainty import saltelli
 from errbudget.uncertainty.design import (
     MIN_BASE_SAMPLES,
     Design,
@@ -96,24 +95,16 @@ def _is_constant(y: np.ndarray) -> bool:
 
 
 def _analyze(problem: dict, y: np.ndarray, conf_level: float, n_resamples: int, seed: int):
-    """Indices per group from SALib; zeros for a constant output. Returns (indices, nan)."""
+    """Indices per group (SALib's estimators); zeros for a constant output.
+
+    Returns (indices, names whose estimate was not finite).
+    """
     group_names = unique_in_order(problem["groups"])
     if _is_constant(y):
         return {g: dict.fromkeys(_INDEX_KEYS, 0.0) for g in group_names}, []
-    with warnings.catch_warnings():
-        # Bootstrap resamples of a nearly constant output may be constant; SALib then
-        # returns 0 for that resample and warns, which is the behaviour we want.
-        warnings.filterwarnings("ignore", message="Constant values encountered")
-        # SALib tests ``if seed:`` and falls back to the global NumPy state for 0, so a
-        # shifted seed keeps every seed (0 included) reproducible.
-        res = salib_analyze.analyze(
-            dict(problem),
-            y,
-            calc_second_order=False,
-            num_resamples=n_resamples,
-            conf_level=conf_level,
-            seed=seed + 1,
-        )
+    # SALib's estimators with the work shared between groups (uncertainty.saltelli); the seed
+    # is shifted by one because SALib falls back to the global NumPy state for seed 0.
+    res = saltelli.indices(y, len(group_names), conf_level, n_resamples, seed + 1)
     indices, replaced = {}, []
     for i, g in enumerate(group_names):
         raw = (res["S1"][i], res["S1_conf"][i], res["ST"][i], res["ST_conf"][i])
