@@ -14,7 +14,17 @@ import pint
 from errbudget.case.quantity_text import Grammar
 from errbudget.errors import InputError
 
-ureg = pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
+
+def _registry() -> pint.UnitRegistry:
+    """The registry, from pint's own cache of its definitions when the user's cache folder
+    can hold one (a tenth of a second at every start), else read afresh."""
+    try:
+        return pint.UnitRegistry(autoconvert_offset_to_baseunit=True, cache_folder=":auto:")
+    except Exception:  # noqa: BLE001 - a cache folder we cannot use: read the definitions
+        return pint.UnitRegistry(autoconvert_offset_to_baseunit=True)
+
+
+ureg = _registry()
 Quantity = ureg.Quantity
 
 COUNT_DIMENSIONS: set[str] = set()  # dimensions created here for population names
