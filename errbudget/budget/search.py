@@ -82,7 +82,10 @@ def roundoff_bound(case: Case, reference: np.ndarray, q: int, step: float, scale
     crossing takes the largest reference time instead (common practice, no source).
     """
     spec = case.quantities[q]
-    size = float(np.nanmax(np.abs(reference[q]))) if spec.kind == "time-to" else scale
+    size = scale
+    if spec.kind == "time-to":
+        finite = np.abs(reference[q][np.isfinite(reference[q])])
+        size = float(finite.max()) if finite.size else 0.0
     return n_steps_for(case.horizon, step) * UNIT_ROUNDOFF[np.float64] * size
 
 
