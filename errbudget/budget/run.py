@@ -124,12 +124,6 @@ def run_case(
         if joint is not None:
             case = with_fitted_nominal(case, fit)
 
-    # The round-off runs (one member, numpy in three arithmetics, mostly Python) go on beside
-    # the ensemble passes, whose compiled loop releases the interpreter.
-    background = ThreadPoolExecutor(1, thread_name_prefix="errbudget-roundoff")
-    rounding_job = background.submit(roundoff.measure, case, case.step)
-    background.shutdown(wait=False)
-
     clock.stage("ladder", "choosing the refinement ladder")
     chosen = ladder.build(case)
     flags.extend(_ladder_flags(case, chosen, scheme.order))
@@ -151,6 +145,12 @@ def run_case(
     )
     work.check(case, plan, rows, patient)
     receiver.planned(plan)
+    # The round-off runs (one member, numpy in three arithmetics, mostly Python) go on beside
+    # the ensemble passes, whose compiled loop releases the interpreter (started after the
+    # speed was measured, which they would slow).
+    background = ThreadPoolExecutor(1, thread_name_prefix="errbudget-roundoff")
+    rounding_job = background.submit(roundoff.measure, case, case.step)
+    background.shutdown(wait=False)
 
     clock.stage("reference pass", "the reference levels")
     passed = passes.reference_pass(

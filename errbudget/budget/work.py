@@ -25,6 +25,7 @@ from errbudget.solve.ensemble import n_steps_for
 
 CALIBRATION_WORK = 2_000_000  # member-steps a speed measurement needs to mean anything
 CALIBRATION_MEMBERS = 4096  # members of the calibration run (whole blocks for every thread)
+CALIBRATION_REPEATS = 3  # calibration runs, the fastest counts
 REFERENCE_DEPTH = 8  # reference step = predicted adequate step / this (candidate, half, margin)
 OVERHEAD_SECONDS = 1.0  # what is not stepping (Sobol indices, round-off, report), roughly
 # The ensemble's error at its percentile against the nominal error, assumed before it is
@@ -69,8 +70,11 @@ def speed(case: Case, level, params: dict) -> float:
     copies = {k: np.full(CALIBRATION_MEMBERS, float(np.asarray(v).reshape(-1)[0]))
               for k, v in params.items()}  # fmt: skip
     steps = max(1, CALIBRATION_WORK // CALIBRATION_MEMBERS)
-    timed = stream(case, copies, [case.horizon / steps])[0]
-    return timed.member_steps / max(timed.seconds, 1e-9)
+    best = 0.0
+    for _ in range(CALIBRATION_REPEATS):  # the fastest of a few: a shared machine is noisy
+        timed = stream(case, copies, [case.horizon / steps])[0]
+        best = max(best, timed.member_steps / max(timed.seconds, 1e-9))
+    return best
 
 
 def adequate_step(case: Case, errors: np.ndarray, allowed: np.ndarray, order: int) -> float:
