@@ -114,7 +114,6 @@ def step_level(
     rarely (a crossing found, a read-off time reached) runs in loops of its own.
     """
     Q = kinds.size
-    E = equilibria.shape[0]
     y, y_next, y_prev = n0[first : first + m].copy(), np.empty(m), np.empty(m)
     f, f_now, f_prev = np.empty(m), np.empty(m), np.empty(m)
     # Zero is absorbing. A member that reaches zero at point n keeps, for the interval
@@ -122,23 +121,9 @@ def step_level(
     just = np.zeros(m, dtype=np.bool_)
     reached, reached_f = np.zeros(m), np.zeros(m)
     end_y, end_f = np.empty(m), np.empty(m)
-    finite_all = np.ones(m, dtype=np.bool_)
-    largest, smallest, scale = np.zeros(m), np.full(m, math.inf), np.zeros(m)
-    safe_prev = np.zeros(m)
-    sign_all, turns = np.zeros(m, dtype=np.int64), np.zeros(m, dtype=np.int64)
-    sign_late, late = np.zeros(m, dtype=np.int64), np.zeros(m, dtype=np.int64)
-    above, below = np.zeros((E, m), dtype=np.bool_), np.zeros((E, m), dtype=np.bool_)
-    high = np.empty((E, m))
-    low = np.empty((E, m))
-    for e in range(E):
-        for j in range(m):
-            high[e, j] = equilibria[e, first + j] * (1 + CROSS_SHARE) + 1e-300
-            low[e, j] = equilibria[e, first + j] * (1 - CROSS_SHARE) - 1e-300
-    side = np.zeros((Q, m))
-    found = np.zeros((Q, m), dtype=np.bool_)
-    hit = np.zeros(m, dtype=np.bool_)
-    best, best_time = np.zeros((Q, m)), np.zeros((Q, m))
-    out = np.full((Q, m), math.nan)
+    track, above, below, high, low = _new_track(equilibria, first, m)
+    side, found, hit = np.zeros((Q, m)), np.zeros((Q, m), dtype=np.bool_), np.zeros(m, np.bool_)
+    best, best_time, out = np.zeros((Q, m)), np.zeros((Q, m)), np.full((Q, m), math.nan)
     for q in range(Q):
         for j in range(m):
             side[q, j] = _sign(y[j] - levels[q])
@@ -151,18 +136,8 @@ def step_level(
             advance_block(y, y_next, f, t, h, p, first, m, factors)
         else:
             slope_block(y, f, t, p, first, m, factors)
-        any_reached = False
-        for j in range(m):  # an absorbed member does not move: its slope is zero
-            f_now[j] = 0.0 if y[j] == 0.0 else f[j]
-            end_y[j] = y[j]
-            end_f[j] = f_now[j]
-            any_reached = any_reached or just[j]
-        if any_reached:  # rare: the interval that reaches zero ends at the step's own value
-            slope_block(reached, reached_f, t, p, first, m, factors)
-            for j in range(m):
-                if just[j]:
-                    end_y[j] = reached[j]
-                    end_f[j] = reached_f[j]
+        _interval_ends(slope_block, y, f, f_now, end_y, end_f, just, reached, reached_f, t, p,
+                       first, m, factors)  # fmt: skip
         if n >= 1:
             _interval(
                 n, m, first, y_prev, end_y, f_prev, end_f, y, h, last, horizon, kinds, levels,
@@ -170,35 +145,9 @@ def step_level(
                 best_time, out, counting, count_grid, count_index, count_s, count_slot,
                 counted,
             )  # fmt: skip
-        for j in range(m):
-            value = y[j]
-            finite = math.isfinite(value)
-            safe = value if finite else 0.0
-            scale[j] = max(scale[j], abs(safe))
+        _point(y, n, last, tail, late_ok, track, above, below, high, low, m)
         if n <= last:
-            for j in range(m):
-                value = y[j]
-                finite = math.isfinite(value)
-                safe = value if finite else 0.0
-                finite_all[j] = finite_all[j] and finite
-                largest[j] = max(largest[j], abs(safe))
-                smallest[j] = min(smallest[j], safe)
-            for e in range(E):
-                for j in range(m):
-                    value = y[j] if math.isfinite(y[j]) else 0.0
-                    above[e, j] = above[e, j] or value > high[e, j]
-                    below[e, j] = below[e, j] or value < low[e, j]
-            if n >= 1 and last >= 2:
-                _count_turns(y, safe_prev, sign_all, turns, m)
-                if late_ok and n >= tail + 1:
-                    _count_turns(y, safe_prev, sign_late, late, m)
-            for q in range(Q):
-                if kinds[q] >= PEAK:
-                    largest_kind = kinds[q] == PEAK
-                    for j in range(m):
-                        if _better(y[j], t, best[q, j], best_time[q, j], largest_kind):
-                            best[q, j] = y[j]
-                            best_time[q, j] = t
+            _grid_extrema(y, t, kinds, best, best_time, m)
         _grid_point(
             n, m, first, y, horizon, kinds, at_grid, end_grid, best, best_time, out,
             counting, count_grid, count_slot, counted,
@@ -210,29 +159,120 @@ def step_level(
                     kept[record, slot] = y[j]
             record += 1
         for j in range(m):
-            safe_prev[j] = y[j] if math.isfinite(y[j]) else 0.0
+            track[T_SAFE_PREV, j] = y[j] if math.isfinite(y[j]) else 0.0
         if n < n_steps:
-            for j in range(m):  # zero is absorbing: a step ending at or below it ends at it
-                stepped = y_next[j]
-                stop = y[j] == 0.0 or stepped <= 0.0
-                just[j] = y[j] != 0.0 and stepped <= 0.0
-                reached[j] = stepped
-                y_next[j] = 0.0 if stop else stepped
+            _absorb(y, y_next, just, reached, m)
         y_prev, y, y_next = y, y_next, y_prev
         f_prev, f_now = f_now, f_prev
+    _store_features(first, m, track, above, below, features)
+    _finish(first, m, horizon, kinds, side, found, best, best_time, out, values, times, n0,
+            track[T_FINITE])  # fmt: skip
+
+
+# Rows of the per-member running state of a level (one float64 array for them all).
+T_FINITE, T_LARGEST, T_SMALLEST, T_SCALE, T_SAFE_PREV = 0, 1, 2, 3, 4
+T_SIGN, T_TURNS, T_SIGN_LATE, T_LATE = 5, 6, 7, 8
+
+
+@njit(cache=True, error_model="numpy")
+def _new_track(equilibria, first, m):
+    """Running features of a block, and each member's bands around its stable levels."""
+    E = equilibria.shape[0]
+    track = np.zeros((9, m))
+    track[T_FINITE] = 1.0
+    track[T_SMALLEST] = math.inf
+    above, below = np.zeros((E, m), dtype=np.bool_), np.zeros((E, m), dtype=np.bool_)
+    high, low = np.empty((E, m)), np.empty((E, m))
+    for e in range(E):
+        for j in range(m):
+            high[e, j] = equilibria[e, first + j] * (1 + CROSS_SHARE) + 1e-300
+            low[e, j] = equilibria[e, first + j] * (1 - CROSS_SHARE) - 1e-300
+    return track, above, below, high, low
+
+
+@njit(cache=True, error_model="numpy")
+def _interval_ends(slope_block, y, f, f_now, end_y, end_f, just, reached, reached_f, t, p, first,
+                   m, factors):  # fmt: skip
+    """Effective slopes at point n (zero where absorbed) and the end of the interval behind it:
+    the state, or where a member reached zero at n, the step's own end value and its slope."""
+    any_reached = False
+    for j in range(m):  # an absorbed member does not move: its slope is zero
+        f_now[j] = 0.0 if y[j] == 0.0 else f[j]
+        end_y[j] = y[j]
+        end_f[j] = f_now[j]
+        any_reached = any_reached or just[j]
+    if any_reached:  # rare: the interval that reaches zero ends at the step's own value
+        slope_block(reached, reached_f, t, p, first, m, factors)
+        for j in range(m):
+            if just[j]:
+                end_y[j] = reached[j]
+                end_f[j] = reached_f[j]
+
+
+@njit(cache=True, error_model="numpy")
+def _point(y, n, last, tail, late_ok, track, above, below, high, low, m):
+    """Features at grid point n: scale always, the rest up to the horizon."""
+    for j in range(m):
+        value = y[j]
+        safe = value if math.isfinite(value) else 0.0
+        track[T_SCALE, j] = max(track[T_SCALE, j], abs(safe))
+    if n > last:
+        return
+    for j in range(m):
+        value = y[j]
+        finite = math.isfinite(value)
+        safe = value if finite else 0.0
+        track[T_FINITE, j] = track[T_FINITE, j] if finite else 0.0
+        track[T_LARGEST, j] = max(track[T_LARGEST, j], abs(safe))
+        track[T_SMALLEST, j] = min(track[T_SMALLEST, j], safe)
+    for e in range(above.shape[0]):
+        for j in range(m):
+            value = y[j] if math.isfinite(y[j]) else 0.0
+            above[e, j] = above[e, j] or value > high[e, j]
+            below[e, j] = below[e, j] or value < low[e, j]
+    if n >= 1 and last >= 2:
+        _count_turns(y, track[T_SAFE_PREV], track[T_SIGN], track[T_TURNS], m)
+        if late_ok and n >= tail + 1:
+            _count_turns(y, track[T_SAFE_PREV], track[T_SIGN_LATE], track[T_LATE], m)
+
+
+@njit(cache=True, error_model="numpy")
+def _grid_extrema(y, t, kinds, best, best_time, m):
+    """Grid values as candidates of every peak and minimum."""
+    for q in range(kinds.size):
+        if kinds[q] >= PEAK:
+            largest_kind = kinds[q] == PEAK
+            for j in range(m):
+                if _better(y[j], t, best[q, j], best_time[q, j], largest_kind):
+                    best[q, j] = y[j]
+                    best_time[q, j] = t
+
+
+@njit(cache=True, error_model="numpy")
+def _absorb(y, y_next, just, reached, m):
+    """Zero is absorbing: a step ending at or below it ends at it; a state at it stays."""
+    for j in range(m):
+        stepped = y_next[j]
+        stop = y[j] == 0.0 or stepped <= 0.0
+        just[j] = y[j] != 0.0 and stepped <= 0.0
+        reached[j] = stepped
+        y_next[j] = 0.0 if stop else stepped
+
+
+@njit(cache=True, error_model="numpy")
+def _store_features(first, m, track, above, below, features):
+    """The block's features into the output array (see errbudget.solve.trajectory.Features)."""
     for j in range(m):
         s = first + j
-        features[F_FINITE, s] = 1.0 if finite_all[j] else 0.0
-        features[F_LARGEST, s] = largest[j]
-        features[F_SMALLEST, s] = smallest[j]
-        features[F_SCALE, s] = scale[j]
-        features[F_TURNS, s] = turns[j]
-        features[F_LATE, s] = late[j]
-        for e in range(E):
+        features[F_FINITE, s] = track[T_FINITE, j]
+        features[F_LARGEST, s] = track[T_LARGEST, j]
+        features[F_SMALLEST, s] = track[T_SMALLEST, j]
+        features[F_SCALE, s] = track[T_SCALE, j]
+        features[F_TURNS, s] = track[T_TURNS, j]
+        features[F_LATE, s] = track[T_LATE, j]
+        for e in range(above.shape[0]):
             features[F_LEVELS + 2 * e, s] = 1.0 if above[e, j] else 0.0
             features[F_LEVELS + 2 * e + 1, s] = 1.0 if below[e, j] else 0.0
-    _finish(first, m, horizon, kinds, side, found, best, best_time, out, values, times, n0,
-            finite_all)  # fmt: skip
 
 
 @njit(cache=True, error_model="numpy", inline="always")
@@ -242,10 +282,10 @@ def _count_turns(y, safe_prev, carried, turns, m):
         value = y[j] if math.isfinite(y[j]) else 0.0
         increment = value - safe_prev[j]
         threshold = FLAT_SHARE * max(abs(value), abs(safe_prev[j]))
-        sign = (increment > threshold) * 1 - (increment < -threshold) * 1
-        flip = (sign != 0) and (carried[j] != 0) and (sign != carried[j])
-        turns[j] += flip
-        carried[j] = sign if sign != 0 else carried[j]
+        sign = (increment > threshold) * 1.0 - (increment < -threshold) * 1.0
+        flip = (sign != 0.0) and (carried[j] != 0.0) and (sign != carried[j])
+        turns[j] += 1.0 if flip else 0.0
+        carried[j] = sign if sign != 0.0 else carried[j]
 
 
 @njit(cache=True, error_model="numpy")
@@ -377,7 +417,7 @@ def _finish(
                 if not math.isfinite(n0[s]) or result > horizon * (1 + GRID_TOLERANCE):
                     result = math.nan
                 values[q, s] = result
-            elif finite_all[j]:
+            elif finite_all[j] == 1.0:
                 values[q, s] = best[q, j]
                 if best[q, j] == best[q, j]:
                     times[q, s] = best_time[q, j]
