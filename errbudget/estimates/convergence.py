@@ -305,18 +305,10 @@ def grid_convergence(values, steps, safety_factor=None, *, formal_order=None) ->
         values or a non-positive safety factor / formal order.
     """
     h, phi = _clean_ladder(values, steps)
-    if safety_factor is not None and not (math.isfinite(safety_factor) and safety_factor > 0):
-        raise ValueError(f"safety_factor must be a positive number, got {safety_factor!r}")
-    if formal_order is not None and not (math.isfinite(formal_order) and formal_order > 0):
-        raise ValueError(f"formal_order must be a positive number, got {formal_order!r}")
+    _check_options(safety_factor, formal_order)
     triplets = [_triplet(phi[i : i + 3], h[i : i + 3]) for i in range(h.size - 2)]
     finest = triplets[0]
-    phi1, phi2, phi3 = (float(x) for x in phi[:3])
-    r21, r32 = float(h[1] / h[0]), float(h[2] / h[1])
-    e21, e32 = phi2 - phi1, phi3 - phi2
     p_obs = finest.order
-    notes: list[str] = []
-
     trusted = finest.behaviour == "monotone" and p_obs is not None
     if trusted and formal_order is not None:
         trusted = abs(p_obs - formal_order) <= FORMAL_ORDER_TOLERANCE * formal_order
@@ -325,46 +317,7 @@ def grid_convergence(values, steps, safety_factor=None, *, formal_order=None) ->
         if safety_factor is not None
         else (SAFETY_TRUSTED if trusted else SAFETY_UNTRUSTED)
     )
-    approx_rel = abs(e21 / phi1) if phi1 != 0.0 else None
-    if phi1 == 0.0:
-        notes.append("the finest value is 0, so relative errors are undefined (None)")
-
-    p_used = None
-    if finest.behaviour == "exact":
-        notes.insert(0, "the three finest levels agree to round-off: no discretisation error")
-        estimate = _Estimate(phi1, 0.0, 0.0, 0.0, 0.0, 0.0, None, False)
-    elif finest.behaviour == "divergent":
-        notes.insert(0, _divergence_note(e21, e32, float(np.max(np.abs(phi[:3])))))
-        estimate = _Estimate(None, approx_rel, None, None, None, None, None, False)
-    else:
-        if p_obs is None:  # the two finest levels agree to round-off: nothing to extrapolate
-            pass
-        elif formal_order is not None and not trusted:
-            p_used = float(formal_order)
-            why = "not monotone"
-            if finest.behaviour == "monotone":
-                why = f"{p_obs:.3g} is not within 10 % of it"
-            notes.append(f"formal order {p_used:g} used with Fs = 3 (observed order {why})")
-        else:
-            p_used = p_obs
-            notes.append(f"observed order {p_obs:.4g} used")
-        if p_obs is not None and finest.solved_by == "bracketing":
-            notes.append(
-                "Celik's fixed-point iteration does not contract for these ratios; "
-                "the order equation was solved by bracketing"
-            )
-        if finest.behaviour == "oscillatory":
-            notes.append("oscillatory convergence: the extrapolation is less reliable")
-        if p_used is None:  # the two finest levels agree to round-off, the coarser does not
-            notes.insert(
-                0,
-                "the two finest levels agree to round-off: taken as converged, order not estimable",
-            )
-            zero_rel = 0.0 if phi1 != 0.0 else None
-            estimate = _Estimate(phi1, approx_rel, zero_rel, zero_rel, 0.0, 0.0, None, False)
-        else:
-            estimate = _richardson_gci(phi1, phi2, phi3, r21, r32, p_used, fs)
-            notes.extend(_settling_note(triplets))
+    estimate, notes = _estimate(phi, h, triplets, formal_order, trusted, fs)
     if safety_factor is not None:
         notes.append(f"safety factor {fs:g} given by the caller")
 
@@ -391,6 +344,65 @@ class _Estimate(NamedTuple):
     error_fine: float | None
     asymptotic_ratio: float | None
     in_asymptotic_range: bool
+
+
+def _check_options(safety_factor, formal_order) -> None:
+    if safety_factor is not None and not (math.isfinite(safety_factor) and safety_factor > 0):
+        raise ValueError(f"safety_factor must be a positive number, got {safety_factor!r}")
+    if formal_order is not None and not (math.isfinite(formal_order) and formal_order > 0):
+        raise ValueError(f"formal_order must be a positive number, got {formal_order!r}")
+
+
+def _estimate(phi, h, triplets, formal_order, trusted, fs) -> tuple[_Estimate, list[str]]:
+    """The estimate of the finest triplet by its behaviour, with the notes that explain it."""
+    finest = triplets[0]
+    phi1, phi2, phi3 = (float(x) for x in phi[:3])
+    r21, r32 = float(h[1] / h[0]), float(h[2] / h[1])
+    e21, e32 = phi2 - phi1, phi3 - phi2
+    approx_rel = abs(e21 / phi1) if phi1 != 0.0 else None
+    notes: list[str] = []
+    if phi1 == 0.0:
+        notes.append("the finest value is 0, so relative errors are undefined (None)")
+    if finest.behaviour == "exact":
+        notes.insert(0, "the three finest levels agree to round-off: no discretisation error")
+        return _Estimate(phi1, 0.0, 0.0, 0.0, 0.0, 0.0, None, False), notes
+    if finest.behaviour == "divergent":
+        notes.insert(0, _divergence_note(e21, e32, float(np.max(np.abs(phi[:3])))))
+        return _Estimate(None, approx_rel, None, None, None, None, None, False), notes
+    p_used = _order_used(finest, formal_order, trusted, notes)
+    if finest.order is not None and finest.solved_by == "bracketing":
+        notes.append(
+            "Celik's fixed-point iteration does not contract for these ratios; "
+            "the order equation was solved by bracketing"
+        )
+    if finest.behaviour == "oscillatory":
+        notes.append("oscillatory convergence: the extrapolation is less reliable")
+    if p_used is None:  # the two finest levels agree to round-off, the coarser does not
+        notes.insert(
+            0,
+            "the two finest levels agree to round-off: taken as converged, order not estimable",
+        )
+        zero_rel = 0.0 if phi1 != 0.0 else None
+        return _Estimate(phi1, approx_rel, zero_rel, zero_rel, 0.0, 0.0, None, False), notes
+    notes.extend(_settling_note(triplets))
+    return _richardson_gci(phi1, phi2, phi3, r21, r32, p_used, fs), notes
+
+
+def _order_used(finest: _Triplet, formal_order, trusted: bool, notes: list[str]) -> float | None:
+    """The observed order, or the formal one when given and the observed is not trusted."""
+    p_obs = finest.order
+    if p_obs is None:  # the two finest levels agree to round-off: nothing to extrapolate
+        return None
+    if formal_order is not None and not trusted:
+        why = "not monotone"
+        if finest.behaviour == "monotone":
+            why = f"{p_obs:.3g} is not within 10 % of it"
+        notes.append(
+            f"formal order {float(formal_order):g} used with Fs = 3 (observed order {why})"
+        )
+        return float(formal_order)
+    notes.append(f"observed order {p_obs:.4g} used")
+    return p_obs
 
 
 def _richardson_gci(phi1, phi2, phi3, r21, r32, p, fs) -> _Estimate:
