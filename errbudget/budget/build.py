@@ -128,7 +128,6 @@ def _quantity(case: Case, scheme: Scheme, evidence: Evidence, q: int) -> dict:
     unit = case.quantity_unit(spec)
     ladder = evidence.ladder
     column = ladder.values[:, q]
-    finest = ladder.convergence[q]
     errors = evidence.errors[q]
     pct = None
     if np.isfinite(errors).all() and errors.size:
@@ -164,38 +163,9 @@ def _quantity(case: Case, scheme: Scheme, evidence: Evidence, q: int) -> dict:
         "value": number(nominal),
         "reference": reference,
         "off_grid": bool(ladder.off_grid[q]),
-        "discretisation": {
-            "error": richardson_case,
-            "error_percentile": pct,
-            "percentile": case.budget.percentile,
-            "gci": _case_gci(ladder.case_level[q], column, scheme.order),
-            "observed_order": finest.observed_order if finest else None,
-            "formal_order": scheme.order,
-            "behaviour": finest.behaviour if finest else "divergent",
-            "asymptotic": bool(ladder.settled[q]),
-            "driver": evidence.drivers[q],
-            "ladder": [
-                {"step": s, "value": number(v)} for s, v in zip(ladder.steps, column, strict=True)
-            ],
-            "finest_levels": finest.to_dict() if finest else None,
-        },
-        "roundoff": {
-            "error": round_error,
-            "bound": number(rounding["bound"][q]),
-            "float32_difference": _difference(rounding["float32"][q], rounding["float64"][q]),
-            "method": rounding["method"],
-            **_curve_block(rounding, q, scheme.order, unit, case.time_unit),
-        },
-        "parameter": {
-            "sd": sd,
-            "mean": spread["mean"],
-            "low": spread["low"],
-            "high": spread["high"],
-            "level": case.budget.level,
-            "indices": {k: v for k, v in evidence.indices[q].items() if not k.startswith("_")},
-            "indices_converged": evidence.indices[q].get("_convergence", {}).get("agree"),
-            "computed_on": REFERENCE_NOTE,
-        },
+        "discretisation": _discretisation(case, scheme, evidence, q, richardson_case, pct),
+        "roundoff": _roundoff(case, scheme, evidence.rounding, q, round_error),
+        "parameter": _parameter(case, spread, evidence.indices[q]),
         "numerical_to_parameter": ratio,
         "allowance": allowed if allowed > 0 else None,
         "numerical_to_allowance": times,
@@ -206,6 +176,54 @@ def _quantity(case: Case, scheme: Scheme, evidence: Evidence, q: int) -> dict:
         "combined": combine.root_sum_square(numerical, sd),
         "shares": combine.shares(pct, round_error, sd),
         "adequate": bool(times is not None and times <= 1.0),
+    }
+
+
+def _discretisation(case, scheme, evidence: Evidence, q: int, error, pct) -> dict:
+    """The discretisation block: case-level error, ensemble percentile, GCI and ladder."""
+    ladder = evidence.ladder
+    column = ladder.values[:, q]
+    finest = ladder.convergence[q]
+    return {
+        "error": error,
+        "error_percentile": pct,
+        "percentile": case.budget.percentile,
+        "gci": _case_gci(ladder.case_level[q], column, scheme.order),
+        "observed_order": finest.observed_order if finest else None,
+        "formal_order": scheme.order,
+        "behaviour": finest.behaviour if finest else "divergent",
+        "asymptotic": bool(ladder.settled[q]),
+        "driver": evidence.drivers[q],
+        "ladder": [
+            {"step": s, "value": number(v)} for s, v in zip(ladder.steps, column, strict=True)
+        ],
+        "finest_levels": finest.to_dict() if finest else None,
+    }
+
+
+def _roundoff(case, scheme, rounding: dict, q: int, error) -> dict:
+    """The round-off block: measured error, bound, single-precision difference, curve."""
+    unit = case.quantity_unit(case.quantities[q])
+    return {
+        "error": error,
+        "bound": number(rounding["bound"][q]),
+        "float32_difference": _difference(rounding["float32"][q], rounding["float64"][q]),
+        "method": rounding["method"],
+        **_curve_block(rounding, q, scheme.order, unit, case.time_unit),
+    }
+
+
+def _parameter(case, spread: dict, indices: dict) -> dict:
+    """The parameter block: spread of the forecast and its Sobol indices."""
+    return {
+        "sd": spread["sd"],
+        "mean": spread["mean"],
+        "low": spread["low"],
+        "high": spread["high"],
+        "level": case.budget.level,
+        "indices": {k: v for k, v in indices.items() if not k.startswith("_")},
+        "indices_converged": indices.get("_convergence", {}).get("agree"),
+        "computed_on": REFERENCE_NOTE,
     }
 
 
