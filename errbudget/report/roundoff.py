@@ -129,6 +129,13 @@ def roundoff_curves(budget: dict) -> Figure | None:
         "the smallest total error. The case's step is the vertical line: far to the right of "
         "the optimum, refining it lowers the error."
     )
+    said = [
+        f"{q.get('name')}: {(q.get('roundoff') or {}).get('statement')}"
+        for q in quantities
+        if (q.get("roundoff") or {}).get("statement")
+    ]
+    if said:
+        caption += " In words, " + " ".join(s.rstrip(".") + "." for s in said)
     return Figure(key, title, caption, alt, svg)
 
 
