@@ -60,7 +60,16 @@ def build_parser() -> argparse.ArgumentParser:
         "--samples", type=_design_size, help="base sample size of the Sobol design (power of 2)"
     )
     run.add_argument("--seed", type=_non_negative_int, help="seed of the sampling design")
-    run.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    run.add_argument(
+        "--quiet",
+        action="store_true",
+        help="print only the verdict line of each case (and no progress on stderr)",
+    )
+    run.add_argument(
+        "--json",
+        action="store_true",
+        help="print budget.json to stdout instead of the summary (a JSON array for several cases)",
+    )
     run.add_argument(
         "--patient",
         action="store_true",
@@ -136,15 +145,25 @@ def _main(arguments: list[str]) -> int:
 
         # All valid before anything runs; --samples checked against each design as it loads.
         cases = [load_case(path, samples=samples) for path in args.cases]
+        from errbudget.outputs.terminal import Printer
+
+        emit = Printer()
         if args.command == "check":
+            from errbudget.case.counts import read_case_counts
             from errbudget.case.load import describe
 
-            for case in cases:
-                print(describe(case))
+            for case in cases:  # the counts files too, so that a misspelt column shows here
+                counted = read_case_counts(case)
+                emit(describe(case, counted))
             return EXIT_OK
         folders = _check_run(cases, args)  # before anything runs
-        for case, folder in zip(cases, folders, strict=True):
-            _run_one(case, folder, args)
+        budgets = [
+            _run_one(case, folder, args, emit) for case, folder in zip(cases, folders, strict=True)
+        ]
+        if args.json:
+            from errbudget.outputs.files import dumps
+
+            emit(dumps(budgets[0] if len(budgets) == 1 else budgets).rstrip("\n"))
         return EXIT_OK
     except InputError as error:
         print(f"errbudget: error: {error.format()}", file=sys.stderr)
@@ -236,7 +255,7 @@ class _Notice:
         return None
 
 
-def _run_one(case, folder: Path, args) -> None:
+def _run_one(case, folder: Path, args, emit) -> dict:
     from errbudget.budget.run import run_case
     from errbudget.outputs import history
     from errbudget.outputs.files import dumps, write_all_atomic
@@ -278,7 +297,13 @@ def _run_one(case, folder: Path, args) -> None:
         history_line = history.line_text(line)
         write_all_atomic(files)
         history.append(folder, line, text=history_line)
-    verdict = data["verdict"]
-    print(f"{case.path}: {'ADEQUATE' if verdict['adequate'] else 'NOT ADEQUATE'}")
-    print(f"  {verdict['reason']}")
-    print(f"  wrote {folder / 'budget.json'} and {folder / 'budget.html'}")
+    from errbudget.outputs import terminal
+
+    if args.json:
+        return data
+    if args.quiet:
+        emit(terminal.verdict_line(data, str(case.path)))
+    else:
+        written = [path.name for path in files] + [f"{history.HISTORY_NAME} (appended)"]
+        emit(terminal.summary(data, str(case.path), folder, written))
+    return data

@@ -35,7 +35,7 @@ from conftest import (
 
 import errbudget
 from errbudget import load_case, run_case
-from errbudget.case.units import ensure_count_units, format_unit, parse_unit, ureg
+from errbudget.case.units import ensure_count_units, format_unit, parse_unit, spelling, ureg
 from errbudget.cli import main
 
 SCHEMA = json.loads((REPO / "errbudget" / "outputs" / "schema" / "budget-1.json").read_text())
@@ -364,7 +364,7 @@ def test_custom_rate_with_wrong_units(capsys, tmp_path):
     # r [1/day] * N [crayfish] * N [crayfish] is crayfish²/day, not crayfish/day.
     assert line == (
         f"errbudget: error: {path}, model.rate: the rate comes out in "
-        f'"crayfish²/day"; it must be a population per time such as "crayfish/day"'
+        f'"crayfish**2/day"; it must be a population per time such as "crayfish/day"'
     )
 
 
@@ -565,7 +565,8 @@ def test_check_prints_resolved_units_and_writes_nothing(capsys, tmp_path, monkey
     monkeypatch.chdir(tmp_path)
     raw = tomllib.loads(case_path.read_text(encoding="utf-8"))
     ensure_count_units(raw["model"]["unit"])
-    population = format_unit(parse_unit(raw["model"]["unit"], "model.unit"))
+    text = raw["model"]["unit"]
+    population = format_unit(parse_unit(text, "model.unit"), spelling(text))  # user's spelling
     time_unit = format_unit(ureg.Quantity(raw["simulation"]["step"]).units)
 
     assert main(["check", str(case_path)]) == 0

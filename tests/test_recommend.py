@@ -107,7 +107,7 @@ def test_without_parameter_spread_the_reason_says_so(tmp_path):
     reference = np.full((1, 4), 500.0)
     reason = why_none(case, tried, [0.0], reference, 1000.0)
     assert '"fish on day 20" has no parameter spread' in reason
-    assert reason.startswith("no candidate step down to 0.5 day meets the rule")
+    assert reason.startswith("no candidate step down to 0.5 days meets the rule")
 
 
 def test_roundoff_first_is_named_as_the_reason(tmp_path):

@@ -39,7 +39,9 @@ ROOT = Path(__file__).resolve().parents[1]
 CASE = ROOT / "cases" / "crayfish-pond.toml"
 SAMPLES = 64  # a power of two, as the Sobol design needs; small keeps the module fast
 CHROMIUM_TIMEOUT = 60  # [s] per browser call
-EXPECTED_FIGURES = {"budget", "convergence", "forecast", "sobol", "stability", "roundoff"}
+EXPECTED_FIGURES = {"convergence", "forecast", "sobol", "stability", "roundoff"}
+# The counts case: every uncertain input is fitted, one Sobol group, so no Sobol chart.
+COUNTED_FIGURES = EXPECTED_FIGURES - {"sobol"}
 A4_PT = (595.28, 841.89)  # ISO 216 A4, 210 mm x 297 mm in PostScript points (recalled)
 PT_TOLERANCE = 1.0  # [pt] Chromium rounds the page box to whole CSS pixels
 
@@ -205,7 +207,6 @@ def _budget_row(html: str, label: str) -> list[str]:
 @pytest.mark.parametrize(
     ("label", "get"),
     [
-        ("Allowance", lambda q: q["allowance"]),
         ("Parameter standard deviation", lambda q: q["parameter"]["sd"]),
         (
             "Numerical error",
@@ -305,7 +306,7 @@ def test_print_stylesheet(report):
 def test_optional_sections_render_when_present(report):
     absent = report.html
     for heading in (
-        "Changes since the last run",
+        "Since the last run",
         "Fit to the counts",
         "Validation against the counts",
     ):
@@ -346,24 +347,24 @@ def test_optional_sections_render_when_present(report):
     html = render_html(data, report.budget.series, report.case.text, include_figures=False)
     text = unescape(html).replace("\u202f", " ")
     for expected in (
-        "Changes since the last run",
+        "Since the last run",
         "2026-05-01T08:00:00+00:00",
         "narrowed",
         "adequate → not adequate",
         "2 day → 1 day",
-        "-131 crayfish",
+        "950 → 819 crayfish",
         "Fit to the counts",
         "0.0612 1 / day",
         "0.0043 1 / day",
         "poisson",
         "14",
         "Validation against the counts",
-        "times [day]",
-        "E [crayfish]",
+        "Time [day]",
+        "Count D [crayfish]",
+        "E = S − D [crayfish]",
         "<td>-1.13</td>",
         "<td>656</td>",
-        "coverage",
-        "model_form",
+        "|E| ≤ 2 × uncertainty?",
     ):
         assert expected in text, expected
 
@@ -392,7 +393,7 @@ def test_missing_and_non_finite_data_do_not_break_the_report(report):
     html = render_html(data, series, report.case.text)
     page = Page(html)
     drawn = {f["id"].removeprefix("fig-") for f in page.figures}
-    assert drawn == {"budget", "forecast", "roundoff"}
+    assert drawn == {"forecast", "roundoff"}
     for key in EXPECTED_FIGURES - drawn:
         assert re.search(rf'id="fig-{key}"[^>]*>.*?not drawn', html, flags=re.S), key
     assert "not available" in html
@@ -730,7 +731,9 @@ def test_better_data_section(counted, report):
     assert "What better data would buy" in text
     assert better["statement"] in text
     for q in counted.data["quantities"]:
-        row = re.search(rf"{re.escape(q['name'])}\s+([\d. ]+) (\S+)\s+([\d. ]+) (\S+)", text)
+        row = re.search(
+            rf"{re.escape(q['name'])}: parameter sd\s+([\d. ]+) (\S+)\s+([\d. ]+) (\S+)", text
+        )
         assert row, q["name"]
         now, then = (float(row.group(i).replace(" ", "")) for i in (1, 3))
         assert now == pytest.approx(q["parameter"]["sd"], rel=5e-3)
@@ -793,20 +796,16 @@ def test_roundoff_curve_and_statement(report):
     assert "C h^p" in caption and "D u/h" in caption
     svg = re.search(r'<figure id="fig-roundoff">.*?</figure>', report.html, flags=re.S).group(0)
     assert "fitted C h^p + D u/h" in svg and "measured (binary64)" in svg
-    statements = _budget_row(report.html, "Round-off, in words")
-    optimum = _budget_row(report.html, "Step of smallest total error")
-    for q, said, best in zip(report.data["quantities"], statements, optimum, strict=True):
-        assert said == q["roundoff"]["statement"]
+    for q in report.data["quantities"]:
+        assert f"{q['name']}: {q['roundoff']['statement']}" in caption
         assert f"{len(q['roundoff']['curve']['steps']['values'])} measured points" in alt
-        assert best.endswith(f"{q['roundoff']['curve']['crossover_step']['unit']})")
-        assert "crossover" in best
     data = copy.deepcopy(report.data)
     for q in data["quantities"]:
         q["roundoff"].update(curve=None, statement=None)
     html = render_html(data, report.budget.series, "")
-    heading, alt, _ = _figure(html, "roundoff")
+    heading, alt, caption = _figure(html, "roundoff")
     assert heading == "Round-off" and alt.startswith("Bar chart of round-off")
-    assert all(c.startswith("not available") for c in _budget_row(html, "Round-off, in words"))
+    assert "In words" not in caption
 
 
 def test_csv_companions_are_named_in_how_it_was_made(report):
@@ -831,7 +830,7 @@ def test_new_elements_escape_hostile_strings(counted):
     assert "<script" not in html.lower() and "<b>u" not in html
     assert html.count("&lt;script&gt;alert(9)&lt;/script&gt;") >= 5
     page = Page(html)
-    assert {f["id"].removeprefix("fig-") for f in page.figures} == EXPECTED_FIGURES
+    assert {f["id"].removeprefix("fig-") for f in page.figures} == COUNTED_FIGURES
     _, alt, _ = _figure(html, "stability")
     assert HOSTILE in alt  # shown as text inside the figure's title
 
@@ -870,9 +869,9 @@ def test_new_elements_survive_non_finite_numbers(counted):
 
 def test_fitted_parameters_are_said_to_be_analysed_as_one_group(counted, report):
     assert "fitted" in counted.data["quantities"][0]["parameter"]["indices"]
-    _, _, caption = _figure(counted.html, "sobol")
-    assert "analysed as one group" in caption
-    for name in counted.data["fit"]["parameters"]:
-        assert name in caption
+    # One group only: no chart, a note naming the group's members instead.
+    note = re.search(r'<p class="skipped" id="fig-sobol">(.*?)</p>', counted.html, flags=re.S)
+    names = ", ".join(counted.data["fit"]["parameters"])
+    assert f"one group of inputs, fitted ({names})" in unescape(note.group(1))
     _, _, plain_caption = _figure(report.html, "sobol")
     assert "analysed as one group" not in plain_caption  # no fit, no group

@@ -15,6 +15,7 @@ import numpy as np
 from errbudget.budget import combine
 from errbudget.budget.search import Judged, Recommendation
 from errbudget.case.load import Case
+from errbudget.case.units import product_unit
 from errbudget.estimates.ladder import RATIO, Ladder
 from errbudget.estimates.richardson import richardson
 from errbudget.solve.ensemble import n_steps_for
@@ -98,7 +99,13 @@ def budget_json(case: Case, scheme: Scheme, evidence: Evidence, flags: list[dict
             "scheme_label": scheme.label,
             "formal_order": scheme.order,
             "step": {"value": case.step, "unit": case.time_unit},
-            "horizon": {"value": case.horizon, "unit": case.time_unit},
+            "horizon": {
+                "value": case.horizon,
+                "unit": case.time_unit,
+                "date": case.calendar.date(case.horizon),
+            },
+            "start": case.calendar.start,
+            "days_per_time_unit": case.calendar.days_per_unit,
             "law": case.model.equation,
             "population_unit": case.population_unit,
         },
@@ -108,7 +115,7 @@ def budget_json(case: Case, scheme: Scheme, evidence: Evidence, flags: list[dict
         "flags": flags,
         "fit": fit.to_dict() if fit is not None else None,
         "since_last": None,
-        "validation": validation,
+        "validation": _dated_validation(case, validation),
         "stability": _stability(case, evidence.limits),
         "trajectory_error": {
             "largest_p95": evidence.series.get("worst_error"),
@@ -155,7 +162,9 @@ def _quantity(case: Case, scheme: Scheme, evidence: Evidence, q: int) -> dict:
     return {
         "name": spec.name,
         "kind": spec.kind,
-        "at": None if spec.at is None else {"value": spec.at, "unit": case.time_unit},
+        "at": None
+        if spec.at is None
+        else {"value": spec.at, "unit": case.time_unit, "date": case.calendar.date(spec.at)},
         "level": None
         if spec.level is None
         else {"value": spec.level, "unit": case.population_unit},
@@ -176,6 +185,8 @@ def _quantity(case: Case, scheme: Scheme, evidence: Evidence, q: int) -> dict:
         "combined": combine.root_sum_square(numerical, sd),
         "shares": combine.shares(pct, round_error, sd),
         "adequate": bool(times is not None and times <= 1.0),
+        "recommended_step": _quantity_step(case, evidence.recommendation, q),
+        "dates": _dates(case, spec.kind, nominal, reference, spread),
     }
 
 
@@ -225,6 +236,35 @@ def _parameter(case, spread: dict, indices: dict) -> dict:
         "indices_converged": indices.get("_convergence", {}).get("agree"),
         "computed_on": REFERENCE_NOTE,
     }
+
+
+def _quantity_step(case: Case, recommendation: Recommendation, q: int) -> dict:
+    """The coarsest step tried from which on (every finer step tried too) quantity ``q`` alone
+    is within its allowance without artefacts; the verdict's step is the finest of these."""
+    judged = [t for t in recommendation.tried if t.ratios and t.note is None]
+    if recommendation.half_check is not None and recommendation.half_check.ratios:
+        judged.append(recommendation.half_check)
+    best = None
+    for t in sorted(judged, key=lambda t: t.step):  # finest first
+        if t.artefacts or not (t.ratios[q] <= 1.0):
+            break
+        best = t.step
+    return {"value": best, "unit": case.time_unit}
+
+
+def _dates(case: Case, kind: str, nominal, reference, spread: dict) -> dict | None:
+    """For a time-to quantity of a case with a start date: the dates its times fall on."""
+    if kind != "time-to" or case.calendar.start is None:
+        return None
+    times = {"value": nominal, "reference": reference, "low": spread["low"], "high": spread["high"]}
+    return {key: case.calendar.date(number(t)) for key, t in times.items()}
+
+
+def _dated_validation(case: Case, validation: dict | None) -> dict | None:
+    """The validation block, with the date of each count time when the case has a start."""
+    if validation is None or case.calendar.start is None or "times" not in validation:
+        return validation
+    return {**validation, "dates": [case.calendar.date(t) for t in validation["times"]]}
 
 
 def _quantity_flags(quantities: list[dict], ladder: Ladder) -> list[dict]:
@@ -297,6 +337,7 @@ def _recommendation(case: Case, recommendation: Recommendation) -> dict:
                 "step": {"value": t.step, "unit": case.time_unit},
                 "adequate": t.adequate,
                 "worst_ratio": t.worst_ratio,
+                "ratios": _ratios(case, t),
                 "artefacts": t.artefacts,
                 "note": t.note,
             }
@@ -310,6 +351,13 @@ def _recommendation(case: Case, recommendation: Recommendation) -> dict:
             "worst_ratio": half.worst_ratio,
         },
     }
+
+
+def _ratios(case: Case, judged: Judged) -> dict | None:
+    """Per quantity name, the numerical error at this step in units of its allowance."""
+    if not judged.ratios:
+        return None
+    return {spec.name: number(r) for spec, r in zip(case.quantities, judged.ratios, strict=True)}
 
 
 def _run(case: Case, evidence: Evidence, run: RunFacts) -> dict:
@@ -370,8 +418,8 @@ def _curve_block(rounding, q: int, order: int, unit: str, time_unit: str) -> dic
     part = fitted["quantities"][q]
     return {
         "curve": {
-            "C": {"value": number(part["C"]), "unit": f"{unit} / {time_unit}^{order}"},
-            "D": {"value": number(part["D"]), "unit": f"{unit} * {time_unit}"},
+            "C": {"value": number(part["C"]), "unit": product_unit(unit, time_unit, -order)},
+            "D": {"value": number(part["D"]), "unit": product_unit(unit, time_unit, 1)},
             "D_is_bound": part["D_is_bound"],
             "p": order,
             "unit_roundoff": fitted["unit_roundoff"],

@@ -1,10 +1,12 @@
-"""Numbers and units in the budget's sentences: "7 days", "7/16 day", "0.5 day"."""
+"""Numbers and units in the budget's sentences: "7 days", "7/16 day", "4.3 plants"."""
 
 from __future__ import annotations
 
 from fractions import Fraction
 
-TIME_WORDS = ("second", "minute", "hour", "day", "week", "month", "year")
+from errbudget.case.units import TIME_WORDS, in_words
+
+__all__ = ["TIME_WORDS", "plain_step", "with_unit"]
 
 
 def plain_step(step: float) -> str:
@@ -20,6 +22,8 @@ def plain_step(step: float) -> str:
 
 
 def with_unit(text: str, value: float, unit: str) -> str:
-    """'7' and 'day' -> '7 days' in sentences (time words only; counts keep their name)."""
-    plural = unit in TIME_WORDS and value > 1
-    return f"{text} {unit}s" if plural else f"{text} {unit}"
+    """'7' and 'day' -> '7 days'; '4.32' and 'plant' -> '4.32 plants'; '1' and 'fish' ->
+    '1 fish'; a fraction of a unit ('7/16') reads 'of a day' style as '7/16 day'."""
+    if "/" in text:  # 7/16 day: a fraction of one unit stays singular
+        return in_words(text, 1.0, unit)
+    return in_words(text, value, unit)

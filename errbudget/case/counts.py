@@ -10,6 +10,7 @@ line (the header is line 1) and the column.
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import io
 import math
@@ -20,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
+from errbudget.case.dates import SimulationStart
 from errbudget.case.files import read_regular_file
 from errbudget.case.limits import MAX_COUNTS_BYTES, MAX_MAGNITUDE
 from errbudget.case.resources import check_count_rows, check_counts_file
@@ -209,36 +211,28 @@ def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[t
             source=source,
             where="line 1",
         )
-    import pandas as pd  # loaded on first use: a refused case never needs it
-
     delimiter = max(_DELIMITERS, key=first_line.count)
-    # pandas is imported only when a counts file is read (``errbudget check`` never does).
-
+    # The standard library's reader, not pandas: ``errbudget check`` reads counts files too
+    # and must stay light. Every cell is text; a blank line is a row of empty cells, so that
+    # row i of the table is line i + 1.
     try:
-        # Everything as text, blank lines kept, so that row i of the table is line i + 1.
-        table = pd.read_csv(
-            io.StringIO(text),
-            sep=delimiter,
-            header=None,
-            dtype=str,
-            keep_default_na=False,
-            na_filter=False,
-            skip_blank_lines=False,
-            engine="c",
-        )
-    except pd.errors.EmptyDataError:
-        raise InputError(f"{where} file holds no table", source=source) from None
-    except pd.errors.ParserError as error:
-        detail = str(error).split("C error: ")[-1].strip()
+        rows = list(csv.reader(io.StringIO(text, newline=""), delimiter=delimiter))
+    except csv.Error as error:
         raise InputError(
-            f"{where} file is not a regular table ({detail}); every row needs the same "
-            "number of cells as the header",
+            f"{where} file is not a regular table ({error}); write one row per line, "
+            "cells separated by commas",
             source=source,
         ) from None
-    cells = [
-        [cell.strip() if isinstance(cell, str) else "" for cell in row]
-        for row in table.itertuples(index=False, name=None)
-    ]
+    width = len(rows[0])
+    for number, row in enumerate(rows[1:], start=2):
+        if len(row) > width:
+            raise InputError(
+                f"{where} file is not a regular table (Expected {width} fields in line "
+                f"{number}, saw {len(row)}); every row needs the same number of cells as the "
+                "header",
+                source=source,
+            )
+    cells = [[cell.strip() for cell in row] + [""] * (width - len(row)) for row in rows]
     header = cells[0]
     if all(name == "" for name in header):
         raise InputError(
@@ -324,7 +318,7 @@ def _scaled_elapsed(
     where: str,
 ) -> list[float]:
     """Elapsed times in the file's unit times ``time_factor`` [internal unit]."""
-    if start is not None:
+    if start is not None and not isinstance(start, SimulationStart):
         raise InputError(
             f'start is only used when the time column holds dates; column "{column}" '
             "holds elapsed times, which already count from the start",
@@ -384,3 +378,21 @@ def _check_order(
                 source=source,
                 where=place,
             )
+
+
+def read_case_counts(case) -> Counts | None:
+    """The counts file of a case (its ``[counts]`` table), read and checked as the run reads
+    it; None when the case has no counts. ``errbudget check`` calls this, so that a misspelt
+    column or a bad row shows before a run."""
+    spec = case.counts
+    if spec is None:
+        return None
+    return read_counts(
+        spec.path,
+        time_column=spec.time_column,
+        count_column=spec.count_column,
+        time_factor=spec.time_factor,
+        days_to_internal=spec.days_to_internal,
+        start=spec.start,
+        where="counts",
+    )

@@ -12,10 +12,10 @@ import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
-import numpy as np
-
 from errbudget.case.budget_table import BudgetSpec, budget_spec
 from errbudget.case.correlations import describe_correlations, read_correlations
+from errbudget.case.dates import SimulationStart, date_text, is_date, moment, start_text
+from errbudget.case.dates import elapsed as date_elapsed
 from errbudget.case.distributions import Distribution
 from errbudget.case.files import read_regular_file
 from errbudget.case.limits import (
@@ -33,6 +33,7 @@ from errbudget.case.units import (
     is_count,
     parse_quantity,
     parse_unit,
+    spelling,
     ureg,
 )
 from errbudget.errors import InputError, did_you_mean
@@ -51,7 +52,7 @@ TOP_KEYS = (
     "correlations",
 )
 MODEL_KEYS = ("form", "unit", "rate")
-SIMULATION_KEYS = ("scheme", "step", "horizon")
+SIMULATION_KEYS = ("scheme", "step", "horizon", "start", "time_unit")
 QUANTITY_KEYS = ("name", "kind", "at", "level")
 COUNTS_KEYS = ("file", "time", "time_unit", "count", "error", "fit", "start")
 ERROR_MODELS = ("poisson", "negative-binomial", "lognormal", "normal")
@@ -67,6 +68,21 @@ class CountsSpec:
     error: str
     fit: tuple[str, ...]
     start: str | None
+
+
+@dataclass(frozen=True)
+class Calendar:
+    """Time 0 of a case as a date: ``start`` (ISO text, naive UTC) and one T in days."""
+
+    start: str | None
+    days_per_unit: float
+
+    def origin(self):
+        return None if self.start is None else moment(self.start, "simulation.start")[0]
+
+    def date(self, elapsed_time) -> str | None:
+        """The date ``elapsed_time`` [T] after the start, or None without a start."""
+        return date_text(self.start, elapsed_time, self.days_per_unit)
 
 
 @dataclass(frozen=True)
@@ -91,6 +107,7 @@ class Case:
     counts: CountsSpec | None
     # Normal-score correlations (first, second, rho) of uncertain inputs, in the order given.
     correlations: tuple[tuple[str, str, float], ...] = ()
+    calendar: Calendar = Calendar(None, 1.0)
 
     def quantity_unit(self, spec: QuantitySpec) -> str:
         return self.time_unit if spec.kind == "time-to" else self.population_unit
@@ -146,7 +163,7 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
     form = reader.text(model_table, "form", "model")
     unit_text = reader.text(model_table, "unit", "model")
     try:
-        ensure_count_units(unit_text)
+        ensure_count_units(unit_text, population=True)
         population = parse_unit(unit_text, "model.unit")
         check_population_unit(population, unit_text, "model.unit")
     except InputError as error:
@@ -160,13 +177,15 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
         raise error.located(reader.source) from None
     step_q = _time_quantity(reader, reader.required(sim, "step", "simulation"), "simulation.step")
     time_unit = step_q.units
-    step = float(step_q.magnitude)
-    horizon = reader.quantity(
-        reader.required(sim, "horizon", "simulation"),
-        "simulation.horizon",
-        time_unit,
-        "a time span",
-    )
+    if "time_unit" in sim:
+        unit_text = reader.text(sim, "time_unit", "simulation")
+        time_unit = _time_quantity(reader, f"1 {unit_text}", "simulation.time_unit").units
+    step = float(step_q.to(time_unit).magnitude)
+    calendar = _calendar(reader, sim, time_unit)
+    horizon = _time_or_date(
+        reader, reader.required(sim, "horizon", "simulation"), "simulation.horizon",
+        time_unit, "a time span", calendar,
+    )  # fmt: skip
     if step <= 0:
         raise reader.fail(f"the step must be positive, got {step_q:P}", "simulation.step")
     if horizon <= 0:
@@ -184,8 +203,11 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
         raise reader.fail("expected a table of parameters", "parameters")
 
     rate_text = model_table.get("rate")
+    spelled = spelling(unit_text)
     if form == "custom":
-        model, parameters = custom_model(reader, rate_text, params_table, population, time_unit)
+        model, parameters = custom_model(
+            reader, rate_text, params_table, population, time_unit, spelled
+        )
     else:
         if rate_text is not None:
             raise reader.fail('"rate" is only used with form = "custom"', "model.rate")
@@ -193,11 +215,11 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
             model = models.built_in(form)
         except InputError as error:
             raise error.located(reader.source) from None
-        parameters = builtin_parameters(reader, model, params_table, population, time_unit)
+        parameters = builtin_parameters(reader, model, params_table, population, time_unit, spelled)
 
-    quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon)
+    quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon, calendar)
     budget = budget_spec(reader, data.get("budget", {}), population)
-    counts = _counts(reader, data.get("counts"), time_unit, parameters)
+    counts = _counts(reader, data.get("counts"), time_unit, parameters, calendar)
     fitted = counts.fit if counts is not None else ()
     correlations = read_correlations(reader, data.get("correlations"), parameters, fitted)
 
@@ -208,7 +230,7 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
         sha256=hashlib.sha256(raw_bytes).hexdigest(),
         model=model,
         rate_text=rate_text,
-        population_unit=format_unit(population),
+        population_unit=format_unit(population, spelled),
         counted=is_count(population),
         time_unit=format_unit(time_unit),
         scheme=scheme_name,
@@ -219,6 +241,7 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
         budget=budget,
         counts=counts,
         correlations=correlations,
+        calendar=calendar,
     )
     check_design_size(case, budget.samples, str(path), "budget.samples")  # as checked raw
     return case
@@ -252,7 +275,31 @@ def _time_quantity(reader: CaseReader, value: object, where: str):
     return q
 
 
-def _quantities(reader, entries, population, time_unit, horizon) -> tuple[QuantitySpec, ...]:
+def _calendar(reader: CaseReader, sim: dict, time_unit) -> Calendar:
+    """``[simulation] start`` (optional) and the length of one time unit in days."""
+    days = float(ureg.Quantity(1, time_unit).to("day").magnitude)
+    if "start" not in sim:
+        return Calendar(None, days)
+    try:
+        origin, plain = moment(sim["start"], "simulation.start")
+    except InputError as error:
+        raise error.located(reader.source, "simulation.start") from None
+    return Calendar(start_text(origin, plain), days)
+
+
+def _time_or_date(reader, value, where, time_unit, meaning, calendar: Calendar) -> float:
+    """An elapsed time [T] from a quantity string ("200 day") or a date (with a start)."""
+    if not is_date(value):
+        return reader.quantity(value, where, time_unit, meaning)
+    try:
+        return date_elapsed(value, calendar.origin(), calendar.days_per_unit, where)
+    except InputError as error:
+        raise error.located(reader.source, where) from None
+
+
+def _quantities(
+    reader, entries, population, time_unit, horizon, calendar
+) -> tuple[QuantitySpec, ...]:
     if entries is None:
         raise reader.fail(
             "at least one [[quantity]] is needed (what the forecast is for)", "quantity"
@@ -276,9 +323,10 @@ def _quantities(reader, entries, population, time_unit, horizon) -> tuple[Quanti
             )
         at = level = None
         if kind == "value":
-            at = reader.quantity(
-                reader.required(entry, "at", where), f"{where}.at", time_unit, "a time"
-            )
+            at = _time_or_date(
+                reader, reader.required(entry, "at", where), f"{where}.at", time_unit, "a time",
+                calendar,
+            )  # fmt: skip
             if not 0 < at <= horizon * (1 + 1e-12):
                 raise reader.fail(
                     f"at = {at:g} {format_unit(time_unit)} is outside the horizon "
@@ -307,7 +355,7 @@ def _quantities(reader, entries, population, time_unit, horizon) -> tuple[Quanti
     return tuple(specs)
 
 
-def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
+def _counts(reader, table, time_unit, parameters, calendar: Calendar) -> CountsSpec | None:
     if table is None:
         return None
     table = reader.table(table, "counts", COUNTS_KEYS)
@@ -334,11 +382,18 @@ def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
     if len(set(fit)) != len(fit):
         raise reader.fail("a parameter is listed twice", "counts.fit")
     start = table.get("start")
-    if start is not None:
-        start = reader.text(table, "start", "counts")
+    if start is not None and calendar.start is not None:
+        raise reader.fail(
+            "the case has [simulation] start, which is also time 0 of the counts' dates; "
+            "remove [counts] start (or give the counts as elapsed times)",
+            "counts.start",
+        )
+    if calendar.start is not None:
+        start = SimulationStart(calendar.start)
+    elif start is not None:
         try:
-            np.datetime64(start)
-        except ValueError:
+            start = start_text(*moment(start, "counts.start"))
+        except InputError:
             raise reader.fail(
                 f"{start!r} is not an ISO date such as 2026-04-01", "counts.start"
             ) from None
@@ -354,17 +409,21 @@ def _counts(reader, table, time_unit, parameters) -> CountsSpec | None:
     )
 
 
-def describe(case: Case) -> str:
-    """What ``errbudget check`` prints: the case as resolved, with units."""
+def describe(case: Case, counts=None) -> str:
+    """What ``errbudget check`` prints: the case as resolved, with units (and a summary of
+    its counts when ``counts``, the :class:`~errbudget.case.counts.Counts` read, is given)."""
     lines = [
         f"case: {case.title}",
         f"  file: {case.path}",
         f"  law: {case.model.form}: {case.model.equation}",
         f"  population unit: {case.population_unit}; time unit: {case.time_unit}",
         f"  scheme: {get_scheme(case.scheme).label} (order {get_scheme(case.scheme).order}), "
-        f"step {case.step:g} {case.time_unit}, horizon {case.horizon:g} {case.time_unit}",
+        f"step {case.step:g} {case.time_unit}, horizon {case.horizon:g} {case.time_unit}"
+        + _dated(case, case.horizon),
         "  parameters:",
     ]
+    if case.calendar.start is not None:
+        lines.insert(4, f"  start (time 0): {case.calendar.start}")
     for p in case.parameters.values():
         spread = "fixed" if p.dist is None else p.dist.describe(p.unit)
         lines.append(f"    {p.name} = {p.nominal:g} {p.unit} ({spread})")
@@ -373,7 +432,7 @@ def describe(case: Case) -> str:
     for q in case.quantities:
         detail = ""
         if q.kind == "value":
-            detail = f"at {q.at:g} {case.time_unit}"
+            detail = f"at {q.at:g} {case.time_unit}" + _dated(case, q.at)
         elif q.kind == "time-to":
             detail = f"level {q.level:g} {case.population_unit}"
         kind = f"{q.kind} {detail}" if detail else q.kind
@@ -389,4 +448,16 @@ def describe(case: Case) -> str:
         priors = [n for n in c.fit if case.parameters[n].dist is not None]
         if priors:
             lines.append(f"    priors (their distributions above): {', '.join(priors)}")
+        if counts is not None:
+            first, last = counts.times[0], counts.times[-1]
+            lines.append(
+                f"    {len(counts.times)} counts read from columns {c.time_column!r} and "
+                f"{c.count_column!r}, at {first:g}{_dated(case, first)} to {last:g} "
+                f"{case.time_unit}{_dated(case, last)}"
+            )
     return "\n".join(lines)
+
+
+def _dated(case: Case, elapsed_time: float) -> str:
+    date = case.calendar.date(elapsed_time)
+    return f" ({date})" if date else ""

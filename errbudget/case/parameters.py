@@ -43,7 +43,9 @@ class Parameter:
     rule: str | None = None  # what a sign-ruled parameter is ("a carrying capacity")
 
 
-def builtin_parameters(reader, model, table, population, time_unit) -> dict[str, Parameter]:
+def builtin_parameters(
+    reader, model, table, population, time_unit, spelled=None
+) -> dict[str, Parameter]:
     expected = ("N0", *model.parameter_names)
     for name in table:
         if name not in expected:
@@ -70,12 +72,14 @@ def builtin_parameters(reader, model, table, population, time_unit) -> dict[str,
         if name not in table:
             raise reader.fail(f"missing parameter {name!r} of the {model.form!r} law", where)
         term = model.terms[name]
-        parameter = _parameter(reader, name, table[name], units[term.kind], meanings[term.kind])
+        parameter = _parameter(
+            reader, name, table[name], units[term.kind], meanings[term.kind], spelled
+        )
         parameters[name] = _check_sign(reader, parameter, where, term)
     return parameters
 
 
-def custom_model(reader, rate_text, table, population, time_unit):
+def custom_model(reader, rate_text, table, population, time_unit, spelled=None):
     from errbudget.case.law_units import result_unit
     from errbudget.laws import expression as expr  # custom laws only
 
@@ -107,11 +111,13 @@ def custom_model(reader, rate_text, table, population, time_unit):
     except InputError as error:
         raise error.located(reader.source, "model.rate") from None
 
-    initial = _parameter(reader, "N0", table["N0"], population, "a population level")
+    initial = _parameter(reader, "N0", table["N0"], population, "a population level", spelled)
     parameters = {"N0": _check_sign(reader, initial, "parameters.N0", models.INITIAL)}
     for name in allowed:
         given_unit = _given_unit(reader, name, table[name])
-        parameters[name] = _parameter(reader, name, table[name], given_unit, "this parameter")
+        parameters[name] = _parameter(
+            reader, name, table[name], given_unit, "this parameter", spelled
+        )
     units = {"N": population, "t": time_unit}
     units.update(
         {
@@ -220,9 +226,9 @@ def _given_unit(reader, name, entry):
         raise error.located(reader.source, where) from None
 
 
-def _parameter(reader, name, entry, unit, meaning) -> Parameter:
+def _parameter(reader, name, entry, unit, meaning, spelled=None) -> Parameter:
     where = f"parameters.{name}"
-    label = format_unit(unit)
+    label = format_unit(unit, spelled)
     coherent = float(ureg.Quantity(1, unit).to_root_units().magnitude)
     if not isinstance(entry, dict):
         value = reader.quantity(entry, where, unit, meaning)

@@ -31,22 +31,60 @@ COUNT_DIMENSIONS: set[str] = set()  # dimensions created here for population nam
 _NAME = re.compile(r"[A-Za-z_][A-Za-z_0-9]*")
 
 
-def ensure_count_units(unit_text: str) -> None:
+def ensure_count_units(unit_text: str, *, population: bool = False) -> None:
     """Define every name in ``unit_text`` that pint does not know as a count unit of its own.
 
     A population measured in "crayfish" gets the new base dimension ``[crayfish]``; a name
     pint knows (``tonne``, ``m``) keeps its meaning, so "mussel / m**2" is a density. The text
     is checked against the grammar first, so nothing is defined from a refused string.
+
+    With ``population`` (the case's ``model.unit``), the first name (what is counted) that pint
+    only reads by splitting off a prefix or a plural ending -- "rats" as ronto-technical-
+    atmospheres, "hares" as hecto-ares, "moles" as the amount of substance -- and that does
+    not come out as a mass, becomes a count unit of its own too: an ordinary plural animal name
+    just works. A name pint holds as it is written ("perch", an old unit of length) keeps its
+    meaning and is refused with advice by :func:`check_population_unit`.
     """
     names = Grammar(unit_text, None).check()[2]
-    for name in names:
+    for position, name in enumerate(names):
         try:
-            ureg.parse_units(name)
-        except pint.errors.UndefinedUnitError:
-            ureg.define(f"{name} = [{name}]")
-            COUNT_DIMENSIONS.add(f"[{name}]")
+            # parse_unit_name, not parse_units: the latter caches what it read, and a name
+            # defined below must be read afresh.
+            known = bool(ureg.parse_unit_name(name))
         except (pint.errors.PintError, ValueError, TypeError, AttributeError):
             raise InputError(f'"{name}" cannot be used as a unit name') from None
+        if not known or (population and position == 0 and _read_by_splitting(name)):
+            _define_count(name)
+
+
+def _define_count(name: str) -> None:
+    ureg.define(f"{name} = [{name}]")
+    COUNT_DIMENSIONS.add(f"[{name}]")
+
+
+def _read_by_splitting(name: str) -> bool:
+    """Whether pint reads ``name`` only as a prefix plus a unit, or a plural, and not as a mass."""
+    if name in COUNT_DIMENSIONS or f"[{name}]" in COUNT_DIMENSIONS:
+        return False
+    readings = ureg.parse_unit_name(name)
+    if any(prefix == "" and unit == name for prefix, unit, _ in readings):
+        return False  # defined under this very name
+    if any(prefix == "" and ureg.get_symbol(unit) == name for prefix, unit, _ in readings):
+        return False  # the unit's own symbol
+    if _is_alias(name):
+        return False
+    # Dimensions of what pint reads, taken from its unit names: asking for ``name`` itself
+    # would cache the reading, and the count unit defined next would not be seen.
+    return all(dict(ureg.get_dimensionality(unit)) != {"[mass]": 1} for _, unit, _ in readings)
+
+
+def _is_alias(name: str) -> bool:
+    """Whether ``name`` is a name or alias pint lists for a unit (not read through a prefix)."""
+    try:
+        definition = ureg._units.get(name)  # pint's table of names, symbols and aliases
+    except AttributeError:
+        return False
+    return definition is not None
 
 
 def _refuse_offset_units(names: list[str], text: str, where: str) -> None:
@@ -152,10 +190,166 @@ def parse_quantity(text: object, where: str) -> pint.Quantity:
     return value
 
 
-def format_unit(unit: pint.Unit | str) -> str:
-    """A short, readable unit label (``1 / day``, ``mussel / m²``)."""
+def format_unit(unit: pint.Unit | str, spelled: dict[str, str] | None = None) -> str:
+    """A unit as a short string pint reads back: ``1/day``, ``fish/day**2``, ``mussel/m**2``.
+
+    The convention of every unit string in budget.json (documented in its schema): names
+    joined by ``*``, the denominator after one ``/`` (several names in it joined by ``/``),
+    integer powers as ``**n``, a pure number as ``1``. ``spelled`` maps pint's name of a unit
+    to the user's spelling of it (``{"kilogram": "kg"}``), kept where the user gave one.
+    """
     unit = ureg.Unit(unit) if isinstance(unit, str) else unit
-    if unit == ureg.dimensionless:
-        return "1"
-    text = f"{unit:P}"
-    return text or str(unit)
+    spelled = spelled or {}
+    up, down = [], []
+    for name, exponent in dict(unit._units).items():
+        label = spelled.get(name, name)
+        power = abs(exponent)
+        power_text = f"{power:g}" if float(power).is_integer() else f"({power:g})"
+        part = label if power == 1 else f"{label}**{power_text}"
+        (up if exponent > 0 else down).append(part)
+    text = "*".join(up) or "1"
+    if down:
+        text += "/" + "/".join(down)
+    return text
+
+
+def spelling(unit_text: str) -> dict[str, str]:
+    """pint's name -> the user's spelling, for each name in ``unit_text`` written as a symbol
+    or as the unit's own name (``kg`` -> kilogram); plurals and prefixed names are not kept."""
+    kept = {}
+    for name in _NAME.findall(unit_text):
+        try:
+            canonical = ureg.get_name(name)
+        except (pint.errors.PintError, ValueError, TypeError, AttributeError):
+            continue
+        if name == canonical or ureg.get_symbol(canonical) == name or _is_alias(name):
+            kept[canonical] = name
+    return kept
+
+
+def pretty_unit(text: str) -> str:
+    """A unit string of budget.json for people: ``mussel/m**2`` -> ``mussel/m²``."""
+    return re.sub(r"\*\*(-?\d+)", lambda m: m.group(1).translate(_SUPERSCRIPT), str(text))
+
+
+_SUPERSCRIPT = str.maketrans("0123456789-", "⁰¹²³⁴⁵⁶⁷⁸⁹⁻")
+
+# Words that take a plural in sentences: time units and common mass units. Count units
+# (names the case defined) do too; symbols (d, kg, m) never do.
+TIME_WORDS = ("second", "minute", "hour", "day", "week", "month", "year")
+MASS_WORDS = ("gram", "kilogram", "tonne", "pound", "ton", "metric_ton")
+# Animal and plant names whose plural is the singular, or irregular (common English usage).
+SAME_IN_PLURAL = frozenset(
+    {
+        "fish",
+        "sheep",
+        "deer",
+        "moose",
+        "bison",
+        "salmon",
+        "trout",
+        "carp",
+        "cod",
+        "pike",
+        "perch",
+        "bass",
+        "tuna",
+        "krill",
+        "plankton",
+        "elk",
+        "reindeer",
+        "grouse",
+        "quail",
+        "squid",
+        "shrimp",
+        "swine",
+        "chub",
+        "roach",
+        "bream",
+        "tench",
+        "dace",
+        "rudd",
+        "zander",
+        "char",
+        "grayling",
+        "herring",
+        "mackerel",
+        "hake",
+        "haddock",
+        "plaice",
+        "sole",
+    }
+)
+IRREGULAR_PLURAL = {
+    "mouse": "mice",
+    "goose": "geese",
+    "louse": "lice",
+    "ox": "oxen",
+    "wolf": "wolves",
+    "calf": "calves",
+    "leaf": "leaves",
+    "loaf": "loaves",
+    "child": "children",
+    "person": "people",
+    "larva": "larvae",
+    "pupa": "pupae",
+    "nymph": "nymphs",
+    "cactus": "cacti",
+    "fungus": "fungi",
+}
+
+
+def plural_name(name: str) -> str:
+    """The English plural of a unit or animal name: plant -> plants, fish -> fish, mouse -> mice.
+
+    A name already in the plural ("rats", "sedges") is kept. Rules of common English usage.
+    """
+    lower = name.lower()
+    if lower in IRREGULAR_PLURAL:
+        return IRREGULAR_PLURAL[lower]
+    if lower in SAME_IN_PLURAL or lower.endswith("fish") or lower in IRREGULAR_PLURAL.values():
+        return name
+    if lower.endswith(("ss", "sh", "ch", "x", "z", "us")):
+        return name + "es"
+    if lower.endswith("s"):
+        return name  # already a plural
+    if lower.endswith("y") and lower[-2:-1] not in tuple("aeiou"):
+        return name[:-1] + "ies"
+    return name + "s"
+
+
+def in_words(text: str, value: float | None, unit: str) -> str:
+    """A number and its unit in a sentence: "2 days", "4.3 plants", "1 fish", "68.8 kg",
+    "3.1 mussels per m²". ``text`` is the number as shown, ``value`` the number itself,
+    ``unit`` a unit string of budget.json (see :func:`format_unit`)."""
+    if not unit or unit == "1":
+        return text
+    first, slash, rest = str(unit).partition("/")
+    head = first
+    if value is not None and abs(value) != 1 and "*" not in first and _takes_plural(first):
+        head = plural_name(first)
+    if not slash:
+        return f"{text} {pretty_unit(head)}"
+    if first == "1":
+        return f"{text} per {pretty_unit(rest)}"
+    return f"{text} {pretty_unit(head)} per {pretty_unit(rest.replace('/', ' per '))}"
+
+
+def _takes_plural(name: str) -> bool:
+    if name in TIME_WORDS or name in MASS_WORDS:
+        return True
+    return f"[{name}]" in COUNT_DIMENSIONS or (
+        _NAME.fullmatch(name) is not None and name not in ureg and len(name) > 2
+    )
+
+
+def product_unit(first: str, second: str, power: int = 1) -> str:
+    """The unit string of ``first`` x ``second``**``power`` (both unit strings of budget.json,
+    names as spelled there): ``("day", "day", -1)`` -> ``"1"``, ``("fish", "day", -2)`` ->
+    ``"fish/day**2"``, ``("kg", "day", 1)`` -> ``"kg*day"``."""
+    for text in (first, second):
+        ensure_count_units(text)  # a count name of the case, if it is not yet defined here
+    names = _NAME.findall(f"{first} {second}")
+    spelled = {ureg.get_name(n): n for n in names if n != "1"}
+    unit = ureg.parse_units(first) * ureg.parse_units(second) ** power
+    return format_unit(unit, spelled)

@@ -199,17 +199,28 @@ def _change(before, now) -> str | None:
 
 
 def _parameter_changes(before: dict, now: dict) -> dict:
-    """Per fitted parameter the sd before and now, and the names whose sd narrowed."""
+    """Per fitted parameter the estimate and sd before and now, and the names whose sd
+    narrowed and whose estimate moved by more than its earlier sd (``shift`` is the move in
+    units of that sd)."""
     parameters = {}
     for name, item in now.items():
-        old_sd = (before.get(name) or {}).get("sd")
+        old = before.get(name) or {}
+        old_sd, old_value, value = old.get("sd"), old.get("value"), item.get("value")
+        shift = None
+        if old_sd and old_value is not None and value is not None:
+            shift = (value - old_value) / old_sd
         parameters[name] = {
             "sd_before": old_sd,
             "sd_now": item.get("sd"),
             "change": _change(old_sd, item.get("sd")),
+            "value_before": old_value,
+            "value_now": value,
+            "unit": item.get("unit"),
+            "shift": shift,
         }
     narrowed = [name for name, item in parameters.items() if item["change"] == "narrowed"]
-    return {"parameters": parameters, "narrowed": narrowed}
+    moved = [n for n, item in parameters.items() if item["shift"] and abs(item["shift"]) > 1]
+    return {"parameters": parameters, "narrowed": narrowed, "moved": moved}
 
 
 def check_forecast(previous: dict, current: dict) -> dict | None:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import matplotlib
 import numpy as np
 
@@ -100,17 +102,23 @@ def sobol(budget: dict) -> Figure:
         return skipped(
             key, title, "not drawn: no Sobol indices (no uncertain parameters, or too few samples)"
         )
-    with matplotlib.rc_context(RC):
-        height = sum(0.75 + 0.3 * len(q["parameter"]["indices"]) for q in quantities)
-        fig, axes = new_figure(
-            0.4 + height,
-            len(quantities),
-            1,
-            gridspec_kw={
-                "height_ratios": [len(q["parameter"]["indices"]) + 1.5 for q in quantities]
-            },
+    fitted = list((budget.get("fit") or {}).get("parameters") or {})
+    if all(len(q["parameter"]["indices"]) == 1 for q in quantities):
+        only = group_label(next(iter(quantities[0]["parameter"]["indices"])), fitted)
+        return skipped(
+            key,
+            title,
+            f"not drawn: the whole spread of the forecast comes from one group of inputs, {only}, "
+            "so its Sobol index is 1 by construction and a chart would tell nothing",
         )
-        alts = [_sobol_panel(ax, q) for ax, q in zip(axes[:, 0], quantities, strict=True)]
+    cols = 2 if len(quantities) > 1 else 1  # side by side: half the height on paper
+    rows = math.ceil(len(quantities) / cols)
+    inputs = max(len(q["parameter"]["indices"]) for q in quantities)
+    with matplotlib.rc_context(RC):
+        fig, axes = new_figure(0.4 + rows * (0.75 + 0.3 * inputs), rows, cols)
+        for ax in axes.flat[len(quantities) :]:
+            ax.set_visible(False)
+        alts = [_sobol_panel(ax, q, fitted) for ax, q in zip(axes.flat, quantities, strict=False)]
         fig.tight_layout(rect=(0, 0, 1, 1 - 0.3 / fig.get_figheight()))
         fig.legend(*axes[0, 0].get_legend_handles_labels(), loc="upper right", ncols=2)
         alt = "Bar chart of Sobol indices. " + "; ".join(alts) + "."
@@ -121,7 +129,12 @@ def sobol(budget: dict) -> Figure:
         "Better data on the inputs with the largest total index narrow the forecast "
         "most; inputs near zero could be fixed."
     )
-    fitted = list((budget.get("fit") or {}).get("parameters") or {})
+    linked = sorted({n for q in quantities for n in q["parameter"]["indices"] if "+" in n})
+    if linked:
+        caption += (
+            " Inputs correlated through [correlations] are drawn together and analysed as one "
+            "group (" + "; ".join(group_label(n, fitted) for n in linked) + ")."
+        )
     grouped = any("fitted" in (q.get("parameter") or {}).get("indices", {}) for q in quantities)
     if fitted and grouped:
         caption += (
@@ -132,7 +145,17 @@ def sobol(budget: dict) -> Figure:
     return Figure(key, title, caption, alt, svg)
 
 
-def _sobol_panel(ax, q: dict) -> str:
+def group_label(name: str, fitted: list[str]) -> str:
+    """A Sobol input or group as the reader knows it: "fitted (r, K, N0)", "r and K"."""
+    if name == "fitted" and fitted:
+        return f"fitted ({', '.join(fitted)})"
+    if "+" in name:
+        members = name.split("+")
+        return ", ".join(members[:-1]) + " and " + members[-1]
+    return name
+
+
+def _sobol_panel(ax, q: dict, fitted: list[str]) -> str:
     """One quantity's first-order and total indices; returns the panel's alt text."""
     parts = q["parameter"]["indices"]
     names = list(parts)
@@ -152,11 +175,11 @@ def _sobol_panel(ax, q: dict) -> str:
             xerr=conf,
             error_kw={"elinewidth": 0.8, "capsize": 2, "ecolor": INK},
         )
-    ax.set_yticks(rows, names)
+    ax.set_yticks(rows, [group_label(n, fitted) for n in names])
     ax.set_xlim(min(-0.05, ax.get_xlim()[0]), max(1.05, ax.get_xlim()[1]))
     ax.axvline(0, color="#6b7780", linewidth=0.6)
     ax.set_title(q.get("name", ""))
-    ax.set_xlabel("Sobol index [1] (share of the forecast variance)")
+    ax.set_xlabel("Sobol index: share of the variance")
     ax.grid(axis="x", color=GRID, linewidth=0.6)
     top = max(names, key=lambda n: finite(parts[n].get("total")) or 0.0)
     return f"{q.get('name')}: largest total index {top} ({plain(parts[top].get('total'))})"

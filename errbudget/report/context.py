@@ -8,7 +8,7 @@ from __future__ import annotations
 import platform
 from importlib import metadata
 
-from errbudget.report import fmt, sections
+from errbudget.report import fmt, memo, sections
 from errbudget.report.fmt import Cell
 from errbudget.report.table import budget_table
 
@@ -99,13 +99,15 @@ def build(budget: dict, case_text: str) -> dict:
             rec.get("value"), rec.get("unit"), why="no candidate step meets the rule"
         ),
         "fraction": fmt.percent(verdict.get("fraction")),
+        "same_step": step.get("value") is not None and step.get("value") == rec.get("value"),
+        "forecast": memo.forecast_rows(budget),
+        "attention": memo.attention(budget),
+        "all_flags": memo.notes(budget),
+        "since_brief": memo.since_brief(budget),
+        "new_counts": memo.new_counts(budget),
         "facts": _facts(budget),
         "columns": [q.get("name", "") for q in quantities],
         "groups": budget_table(quantities, verdict.get("fraction")),
-        "flags": [
-            {"code": f.get("code", ""), "message": f.get("message", "")}
-            for f in budget.get("flags") or []
-        ],
         "since_last": sections.changes(budget.get("since_last"), quantities),
         "fit": sections.fit_summary(budget.get("fit")),
         "validation": sections.validation(budget.get("validation")),
@@ -135,9 +137,16 @@ def _facts(budget: dict) -> list[tuple[str, Cell]]:
         ("Growth law", Cell(sim.get("law") or "not recorded", not sim.get("law"))),
         ("Scheme", Cell(f"{scheme} (formal order {order})" if order else scheme)),
         ("Case's step", fmt.step(step.get("value"), step.get("unit"))),
-        ("Horizon", fmt.step(horizon.get("value"), horizon.get("unit"))),
+        ("Horizon", _horizon(horizon, sim.get("start"))),
         ("Population unit", Cell(sim.get("population_unit") or "not recorded")),
     ]
+
+
+def _horizon(horizon: dict, start) -> Cell:
+    cell = fmt.step(horizon.get("value"), horizon.get("unit"))
+    if start and horizon.get("date"):
+        return Cell(f"{cell.text}, from {start} to {horizon['date']}")
+    return cell
 
 
 def _provenance(budget: dict) -> list[tuple[str, Cell]]:

@@ -45,7 +45,7 @@ def convergence(budget: dict) -> Figure:
     cols = 2 if len(panels) > 1 else 1
     rows = math.ceil(len(panels) / cols)
     with matplotlib.rc_context(RC):
-        fig, axes = new_figure(0.9 + 2.6 * rows, rows, cols)
+        fig, axes = new_figure(0.9 + 2.2 * rows, rows, cols)
         alts, handles = [], {}
         for ax, (q, points) in zip(axes.flat, panels, strict=False):
             ax.set_title(quantity_title(q), pad=8)
@@ -155,8 +155,14 @@ def _reference_lines(ax, allowance: float | None, steps: dict) -> None:
             steps["case"],
             color=INK,
             linewidth=0.9,
-            label=f"case's step {step_text(steps['case'], unit_t).text}",
+            label=(
+                f"case's step {step_text(steps['case'], unit_t).text}"
+                + (" (= recommended step)" if steps["case"] == steps["recommended"] else "")
+            ),
         )
+    case, rec = steps["case"], steps["recommended"]
+    if rec and case and abs(rec - case) <= 1e-9 * case:
+        return  # the same step: one line, labelled as the case's step in the legend
     if steps["recommended"]:
         ax.axvline(
             steps["recommended"],

@@ -1,4 +1,5 @@
-"""The report's figures, in reading order, written as inline SVG strings.
+"""The report's figures, in reading order (the error budget per quantity is a table on page 1;
+``bars.budget_bars`` draws it as bars for whoever wants the chart), written as inline SVG strings.
 
 One module per figure family: ``bars`` (error budget, Sobol indices), ``convergence``,
 ``forecast``, ``stability`` (the map, or the step limits as bars) and ``roundoff`` (the
@@ -13,7 +14,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 
-from errbudget.report.bars import budget_bars, sobol
+from errbudget.report.bars import budget_bars, sobol  # noqa: F401 (budget_bars: API)
 from errbudget.report.convergence import convergence
 from errbudget.report.figure import Figure, skipped
 from errbudget.report.forecast import forecast
@@ -43,7 +44,6 @@ def all_figures(budget: dict, series: dict | None) -> list[Figure]:
     """Every figure of the report, in reading order."""
     series = series or {}
     builders: list[tuple[str, str, Callable[[], Figure]]] = [
-        ("budget", "Error budget per quantity", lambda: budget_bars(budget)),
         ("convergence", "Convergence with the step", lambda: convergence(budget)),
         ("forecast", "The forecast over time", lambda: forecast(budget, series)),
         ("sobol", "Which parameters drive the spread", lambda: sobol(budget)),

@@ -52,7 +52,7 @@ def forecast(budget: dict, series: dict) -> Figure:
     units = (sim.get("step", {}).get("unit", ""), sim.get("population_unit", ""))
     step_value = finite(sim.get("step", {}).get("value"))
     with matplotlib.rc_context(RC):
-        fig, axes = new_figure(4.3, 2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.25]})
+        fig, axes = new_figure(3.5, 2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.25]})
         top, bottom = axes[0, 0], axes[1, 0]
         alt = _population_panel(top, arrays, step_value, units)
         marked = _counts_and_marks(top, budget, series, *units)

@@ -64,9 +64,12 @@ def render_html(budget: dict, series: dict, case_text: str, *, include_figures: 
     page = context.build(budget, case_text)
     if include_figures:
         from errbudget.report import figures  # matplotlib is loaded only to draw figures
+        from errbudget.report.rerun import new_counts_figure
 
         page["figures"] = figures.all_figures(budget, series)
+        page["since_figure"] = new_counts_figure(budget, series) if page["new_counts"] else None
     else:
         page["figures"] = [skipped("all", "Figures", "left out of this render")]
+        page["since_figure"] = None
     page["css"] = _stylesheet()
     return _environment().get_template(TEMPLATE).render(**page)

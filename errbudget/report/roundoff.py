@@ -6,6 +6,8 @@ without one gets the bars in its panel); with no curve at all the figure is the 
 
 from __future__ import annotations
 
+import math
+
 import matplotlib
 import numpy as np
 
@@ -30,7 +32,7 @@ from errbudget.report.plotting import (
     to_svg,
 )
 
-CURVE_PANEL_IN = 2.3  # height of one round-off curve panel [in]
+CURVE_PANEL_IN = 2.2  # height of one round-off curve panel [in]
 BAR_PANEL_IN = 1.45  # height of a round-off bar panel (no fitted curve) [in]
 CURVE_POINTS = 200  # points of a fitted curve on its log-spaced step grid
 REACH = 3.0  # the fitted curve runs this factor beyond the extreme steps and the optimum
@@ -91,13 +93,14 @@ def roundoff_curves(budget: dict) -> Figure | None:
     sim = budget.get("simulation") or {}
     unit_t = (sim.get("step") or {}).get("unit", "")
     case_step = finite((sim.get("step") or {}).get("value"))
-    heights = [CURVE_PANEL_IN if c else BAR_PANEL_IN for c in curves]
+    cols = 2 if len(quantities) > 1 else 1  # side by side: half the height on paper
+    rows = math.ceil(len(quantities) / cols)
     with matplotlib.rc_context(RC):
-        fig, axes = new_figure(
-            0.5 + sum(heights), len(quantities), 1, gridspec_kw={"height_ratios": heights}
-        )
+        fig, axes = new_figure(0.5 + CURVE_PANEL_IN * rows, rows, cols)
+        for ax in axes.flat[len(quantities) :]:
+            ax.set_visible(False)
         alts = []
-        for ax, q, cv in zip(axes[:, 0], quantities, curves, strict=True):
+        for ax, q, cv in zip(axes.flat, quantities, curves, strict=False):
             ax.set_title(quantity_title(q), pad=8)
             if cv is None:
                 _bars(ax, q)
@@ -111,7 +114,7 @@ def roundoff_curves(budget: dict) -> Figure | None:
                 f"{step_text(cv['crossover'], unit_t, why='none').text}"
             )
         handles = {}
-        for ax in axes[:, 0]:
+        for ax in axes.flat:
             for handle, label in zip(*ax.get_legend_handles_labels(), strict=True):
                 handles.setdefault(label, handle)
         fig.tight_layout(rect=(0, 0.55 / fig.get_figheight() + 0.02, 1, 1), h_pad=1.2)
@@ -126,6 +129,13 @@ def roundoff_curves(budget: dict) -> Figure | None:
         "the smallest total error. The case's step is the vertical line: far to the right of "
         "the optimum, refining it lowers the error."
     )
+    said = [
+        f"{q.get('name')}: {(q.get('roundoff') or {}).get('statement')}"
+        for q in quantities
+        if (q.get("roundoff") or {}).get("statement")
+    ]
+    if said:
+        caption += " In words, " + " ".join(s.rstrip(".") + "." for s in said)
     return Figure(key, title, caption, alt, svg)
 
 

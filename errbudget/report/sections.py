@@ -9,9 +9,6 @@ from __future__ import annotations
 from errbudget.report import fmt
 from errbudget.report.fmt import Cell
 
-LIST_SHOWN = 8  # lists longer than this are summarised in generic tables, not printed whole
-PROSE_LENGTH = 80  # longer strings are sentences: shown as paragraphs, not table cells
-
 
 def step_search(recommendation: dict) -> list[dict]:
     """Rows of the coarse-to-fine search for the recommended step, and its half-step check."""
@@ -45,34 +42,21 @@ def step_search(recommendation: dict) -> list[dict]:
     return rows
 
 
-def _change_cell(item, unit: str | None) -> list[Cell]:
-    """Before, now and change of one item of ``since_last`` (a signed change)."""
-    if not isinstance(item, dict):
-        return [fmt.scalar(item), Cell(""), Cell("")]
-    change = fmt.finite(item.get("change"))
-    sign = "+" if change is not None and change > 0 else ""
-    changed = fmt.with_unit(change, unit, why="a value is missing")
-    if change is not None:
-        changed = Cell(sign + changed.text)
-    return [
-        fmt.with_unit(item.get("before"), unit, fmt.SIG_VALUE, why="not recorded"),
-        fmt.with_unit(item.get("now"), unit, fmt.SIG_VALUE, why="not recorded"),
-        changed,
-    ]
+def _before_now(item, unit: str | None, sig: int = fmt.SIG_ERROR) -> Cell:
+    """ "before → now" of one item of ``since_last`` with the unit once."""
+    item = item if isinstance(item, dict) else {}
+    before = fmt.number(item.get("before"), sig)
+    now = fmt.with_unit(item.get("now"), unit, sig, why="not recorded")
+    if before is None:
+        return now
+    return Cell(f"{before} → {now.text}")
 
 
 def changes(since: dict | None, quantities: list[dict]) -> dict | None:
-    """The comparison with the previous run (history.compare), robust to missing keys."""
+    """The comparison with the previous run (history.compare), one row per quantity."""
     if not since:
         return None
     units = {q.get("name"): q.get("unit") for q in quantities}
-    labels = {
-        "value": "value",
-        "reference": "reference",
-        "discretisation": "discretisation error (percentile)",
-        "roundoff": "round-off",
-        "parameter_sd": "parameter sd",
-    }
 
     def pair(entry, show):
         entry = entry if isinstance(entry, dict) else {}
@@ -85,21 +69,49 @@ def changes(since: dict | None, quantities: list[dict]) -> dict | None:
         v = v or {}
         return fmt.step(v.get("value"), v.get("unit"), why="none qualified").text
 
-    items = []
-    for name, changes in (since.get("quantities") or {}).items():
-        rows = []
-        for key, label in labels.items():
-            if isinstance(changes, dict) and key in changes:
-                rows.append({"label": label, "cells": _change_cell(changes[key], units.get(name))})
-        spread = changes.get("spread") if isinstance(changes, dict) else None
-        items.append({"name": name, "rows": rows, "spread": spread})
+    rows = []
+    for name, item in (since.get("quantities") or {}).items():
+        item = item if isinstance(item, dict) else {}
+        unit = units.get(name)
+        rows.append(
+            {
+                "name": name,
+                "cells": [
+                    _before_now(item.get("reference"), unit, fmt.SIG_VALUE),
+                    _before_now(item.get("parameter_sd"), unit),
+                    Cell(item.get("spread") or "not recorded"),
+                    _before_now(item.get("discretisation"), unit),
+                ],
+            }
+        )
+    parameters = []
+    for name, item in (since.get("parameters") or {}).items():
+        item = item if isinstance(item, dict) else {}
+        unit = item.get("unit")
+        shift = fmt.finite(item.get("shift"))
+        parameters.append(
+            {
+                "name": name,
+                "cells": [
+                    _before_now(
+                        {"before": item.get("value_before"), "now": item.get("value_now")},
+                        unit,
+                        fmt.SIG_VALUE,
+                    ),
+                    _before_now({"before": item.get("sd_before"), "now": item.get("sd_now")}, unit),
+                    Cell(item.get("change") or "new"),
+                    Cell(f"{fmt.number(shift, 2)} earlier sd" if shift is not None else ""),
+                ],
+            }
+        )
     return {
         "previous_time": since.get("previous_time") or "not recorded",
         "case_changed": fmt.scalar(since.get("case_changed")).text,
         "counts_changed": fmt.scalar(since.get("counts_changed")).text,
         "verdict": pair(since.get("verdict"), verdict_word),
         "recommended": pair(since.get("recommended_step"), step_text),
-        "quantities": items,
+        "quantities": rows,
+        "parameters": parameters,
     }
 
 
@@ -142,57 +154,61 @@ def fit_summary(fit: dict | None) -> dict | None:
     return {"parameters": rows, "summary": summary, "message": fit.get("message")}
 
 
-def key_values(data: dict | None, prefix: str = "") -> list[tuple[str, Cell]] | None:
-    """Any nested dict as (dotted key, value) rows; long lists summarised."""
-    if not data:
-        return None
-    rows: list[tuple[str, Cell]] = []
-    for key, value in data.items():
-        label = f"{prefix}{key}"
-        if isinstance(value, dict):
-            rows.extend(key_values(value, label + " › ") or [(label, Cell("(empty)"))])
-        elif isinstance(value, list):
-            if len(value) <= LIST_SHOWN and all(not isinstance(v, dict | list) for v in value):
-                rows.append((label, Cell(", ".join(fmt.scalar(v).text for v in value))))
-            else:
-                rows.append((label, Cell(f"{len(value)} entries (see budget.json)")))
-        else:
-            rows.append((label, fmt.scalar(value)))
-    return rows
+VALIDATION_COLUMNS = (  # budget.json key, heading (the unit is added)
+    ("times", "Time"),
+    ("D", "Count D"),
+    ("S", "Model S"),
+    ("E", "E = S − D"),
+    ("u_val", "Validation uncertainty"),
+)
 
 
-def validation(data: dict | None) -> dict | None:
-    """The validation comparison as a table of whatever keys it has.
+def validation(data: dict | None, dates: list | None = None) -> dict | None:
+    """The V&V 20 comparison at the count times, with headings a biologist reads.
 
-    Lists of plain values that share the most common length (one entry per count time:
-    times, S, D, E, u_val...) become the columns of one table; long strings become paragraphs;
-    everything else is listed as key-value rows. A column's unit is read from ``time_unit``
-    for keys naming a time and from ``unit`` for the other numeric columns, when the dict
-    carries them.
+    Parameters
+    ----------
+    data : dict or None
+        budget.json's ``validation``.
+    dates : list of str, optional
+        The calendar date of each count time (a case with a start date).
     """
     if not data:
         return None
-    lengths = [len(v) for v in data.values() if _plain_list(v)]
-    length = max(set(lengths), key=lengths.count) if lengths else 0
-    columns = [k for k, v in data.items() if _plain_list(v) and len(v) == length]
-    if length < 2 or len(columns) < 2:
-        columns = []
-    rest = {k: v for k, v in data.items() if k not in columns}
     unit, time_unit = data.get("unit"), data.get("time_unit")
-    units = {}
-    for key in columns:
-        numeric = any(isinstance(v, float | int) and not isinstance(v, bool) for v in data[key])
-        kind = time_unit if "time" in key.lower() else unit
-        units[key] = kind if numeric and isinstance(kind, str) else None
-    records = [[_cell(data[k][i]) for k in columns] for i in range(length)]
-    headers = [f"{k} [{units[k]}]" if units[k] else k for k in columns]
-    notes = [v for v in rest.values() if isinstance(v, str) and len(v) > PROSE_LENGTH]
-    rest = {k: v for k, v in rest.items() if not (isinstance(v, str) and v in notes)}
-    return {"notes": notes, "rows": key_values(rest) or [], "headers": headers, "records": records}
-
-
-def _plain_list(value) -> bool:
-    return isinstance(value, list) and all(not isinstance(v, dict | list) for v in value)
+    columns = [(k, h) for k, h in VALIDATION_COLUMNS if isinstance(data.get(k), list)]
+    length = min((len(data[k]) for k, _ in columns), default=0)
+    exceed = data.get("exceed") if isinstance(data.get("exceed"), list) else []
+    dates = dates or data.get("dates") or []
+    records = []
+    for i in range(length):
+        row = []
+        for key, _ in columns:
+            value = data[key][i]
+            if key == "times":
+                text = fmt.step(value, None).text
+                row.append(Cell(f"{text} ({dates[i]})" if i < len(dates) and dates[i] else text))
+            else:
+                row.append(_cell(value))
+        beyond = i < len(exceed) and bool(exceed[i])
+        row.append(Cell("outside", tone="no") if beyond else Cell("within", tone="ok"))
+        records.append(row)
+    headers = [f"{h} [{time_unit if k == 'times' else unit}]" for k, h in columns]
+    coverage = fmt.number(data.get("coverage"), 3) or "2"
+    headers.append(f"|E| ≤ {coverage} × uncertainty?")
+    rows = [
+        ("Count times compared", fmt.scalar(data.get("n_times"))),
+        ("Beyond the uncertainty", fmt.scalar(data.get("n_exceed"))),
+    ]
+    flag = data.get("flag") or {}
+    statement = data.get("statement")
+    return {
+        "notes": [statement] if statement else [],
+        "flag": flag.get("message") if isinstance(flag, dict) else None,
+        "rows": rows,
+        "headers": headers,
+        "records": records,
+    }
 
 
 def _cell(value) -> Cell:
@@ -203,30 +219,62 @@ def _cell(value) -> Cell:
 
 
 def better_data(data: dict | None, quantities: list[dict], recommended: dict | None) -> dict | None:
-    """What twice the counts would change: the statement and parameter sd now vs then."""
+    """What better data would buy: with counts, twice the counts (parameter sd now and then);
+    without, each uncertain input's sd halved in turn (one column per input)."""
     if not isinstance(data, dict) or not data:
         return None
-    then_sd = data.get("parameter_sd") if isinstance(data.get("parameter_sd"), dict) else {}
-    rows = []
-    for q in quantities:
-        name, unit = q.get("name", ""), q.get("unit")
-        if name not in then_sd:
-            continue
+    now = recommended or {}
+    step_now = fmt.step(now.get("value"), now.get("unit"), why="no step qualifies")
+    inputs = data.get("inputs") if isinstance(data.get("inputs"), dict) else None
+    if inputs:
+        columns = [f"{name}’s sd halved" for name in inputs]
+        rows = []
+        for q in quantities:
+            name, unit = q.get("name", ""), q.get("unit")
+            cells = [
+                fmt.with_unit(((item or {}).get("parameter_sd") or {}).get(name), unit, why="n/a")
+                for item in inputs.values()
+            ]
+            now_sd = fmt.with_unit((q.get("parameter") or {}).get("sd"), unit, why="undefined")
+            rows.append({"label": f"{name}: parameter sd", "now": now_sd, "cells": cells})
+        steps = [
+            fmt.step(
+                ((item or {}).get("recommended_step") or {}).get("value"),
+                ((item or {}).get("recommended_step") or {}).get("unit"),
+                why="no step qualifies",
+            )
+            for item in inputs.values()
+        ]
+        rows.append({"label": "Recommended step", "now": step_now, "cells": steps})
+        draws = [
+            fmt.scalar(round(fmt.finite((i or {}).get("effective_draws")) or 0))
+            for i in inputs.values()
+        ]
+        rows.append({"label": "Effective draws (reweighting)", "now": Cell(""), "cells": draws})
+    else:
+        columns = ["With twice the counts"]
+        then_sd = data.get("parameter_sd") if isinstance(data.get("parameter_sd"), dict) else {}
+        rows = []
+        for q in quantities:
+            name, unit = q.get("name", ""), q.get("unit")
+            if name not in then_sd:
+                continue
+            now_sd = fmt.with_unit((q.get("parameter") or {}).get("sd"), unit, why="undefined")
+            then = fmt.with_unit(then_sd.get(name), unit, why="undefined")
+            rows.append({"label": f"{name}: parameter sd", "now": now_sd, "cells": [then]})
+        then_step = data.get("recommended_step") or {}
         rows.append(
             {
-                "name": name,
-                "now": fmt.with_unit((q.get("parameter") or {}).get("sd"), unit, why="undefined"),
-                "then": fmt.with_unit(then_sd.get(name), unit, why="undefined"),
+                "label": "Recommended step",
+                "now": step_now,
+                "cells": [fmt.step(then_step.get("value"), then_step.get("unit"), why="none")],
             }
         )
-    now = recommended or {}
-    then = data.get("recommended_step") or {}
     return {
         "statement": data.get("statement") or "",
         "assumption": data.get("assumption") or "",
+        "columns": columns,
         "rows": rows,
-        "step_now": fmt.step(now.get("value"), now.get("unit"), why="no step qualifies"),
-        "step_then": fmt.step(then.get("value"), then.get("unit"), why="no step qualifies"),
     }
 
 

@@ -34,7 +34,7 @@ from errbudget.report.plotting import (
 )
 
 CENTRAL = (5.0, 95.0)  # percentiles bounding the ensemble's central 90 % range of the input
-MAP_HEIGHT_IN = 3.4  # height of the stability map [in]
+MAP_HEIGHT_IN = 2.8  # height of the stability map [in]
 MIN_POINTS = 2  # a map needs at least this many members with a finite limit
 MAX_MEMBERS_DRAWN = 256  # up to this many members, each is its own dot
 SLICES = 128  # beyond it, members are summarised over this many equal slices of the input
@@ -115,20 +115,30 @@ def _draw(ax, limits: Limits, marker: str, size: float, color: str, label: str) 
     return (band, line), f"{label}: median and range in each slice of the input"
 
 
+NEAR = 1.6  # steps closer than this factor on the log axis get labels above and below
+
+
 def _mark_steps(ax, case_step, rec, strictest: float, unit_t: str) -> None:
-    """The case's and the recommended step as lines, and the strictest limit, labelled."""
-    for value, color, style, label in (
-        (case_step, INK, "-", "case's step"),
-        (rec, GREEN, ":", "recommended step"),
-    ):
+    """The case's and the recommended step as lines, and the strictest limit, labelled.
+
+    Equal steps get one label; steps within a factor ``NEAR`` of each other get their labels
+    above and below their lines, so that the two never overlap.
+    """
+    same = bool(case_step and rec and abs(case_step - rec) <= 1e-9 * case_step)
+    near = bool(case_step and rec and max(case_step, rec) / min(case_step, rec) < NEAR)
+    marks = [(case_step, INK, "-", "case's step = recommended step" if same else "case's step")]
+    if not same:
+        marks.append((rec, GREEN, ":", "recommended step"))
+    for value, color, style, label in marks:
         if value and value > 0:
             ax.axhline(value, color=color, linestyle=style, linewidth=1.5)
+            above = value >= max(v for v, *_ in marks if v)
             ax.text(
                 1.0,
                 value,
                 f" {label} {step_text(value, unit_t).text}",
                 transform=ax.get_yaxis_transform(),
-                va="center",
+                va=("bottom" if above else "top") if near and not same else "center",
                 fontsize=7.5,
                 color=color,
             )

@@ -35,8 +35,7 @@ def budget_table(quantities: list[dict], fraction) -> list[dict]:
     """The table's groups, each ``{"title", "rows": [{"label", "cells", "note", "strong"}]}``."""
     pct_label = f"{fmt.number(_first(quantities, 'percentile') or 95, 3)}th percentile"
     groups = (
-        ("The forecast", _forecast_rows()),
-        ("The test", _test_rows(fraction, pct_label)),
+        ("The numbers behind page 1", [_forecast_rows()[1], *_test_rows(fraction, pct_label)[:2]]),
         ("Numerical error in detail", _numerical_rows(pct_label)),
         ("Parameter uncertainty in detail", _parameter_rows()),
     )
@@ -126,32 +125,11 @@ def _numerical_rows(pct_label: str) -> list[Row]:
             lambda q: _size(q, _roundoff(q).get("error"), "not measured"),
             "binary64 against a wider type",
         ),
-        Row(
-            "Round-off, bound",
-            lambda q: _size(q, _roundoff(q).get("bound"), "not computed"),
-            "unit round-off × steps × size",
-        ),
-        Row(
-            "Step of smallest total error",
-            lambda q: _curve_step(q, "optimum_step"),
-            "fitted C hᵖ + D u/h (round-off overtakes below the crossover)",
-        ),
-        Row("Round-off, in words", _roundoff_words),
     ]
 
 
 def _parameter_rows() -> list[Row]:
     return [
-        Row(
-            "Central interval",
-            lambda q: fmt.interval(
-                _par(q).get("low"),
-                _par(q).get("high"),
-                q.get("unit"),
-                _par(q).get("level"),
-                why=WHY_SD,
-            ),
-        ),
         Row("Largest driver", lambda q: _driver(_par(q).get("indices"))),
         Row(
             "Combined uncertainty",
