@@ -582,3 +582,22 @@ def test_check_prints_resolved_units_and_writes_nothing(capsys, tmp_path, monkey
             line.startswith(f"    {q['name']}: ") and line.endswith(f"[{unit}]") for line in lines
         ), q["name"]
     assert list(tmp_path.iterdir()) == []
+
+
+def test_check_reads_the_counts_and_refuses_a_misspelt_column(capsys, tmp_path, monkeypatch):
+    """``check`` opens the counts file: a misspelt count column exits 2 naming file and column,
+    as ``run`` would, and nothing is written."""
+    monkeypatch.chdir(tmp_path)
+    source = REPO / "cases" / "perch-reservoir.toml"
+    counts = (REPO / "cases" / "perch-reservoir-counts.csv").read_text(encoding="utf-8")
+    (tmp_path / "perch-reservoir-counts.csv").write_text(
+        counts.replace("day,count", "day,cuont", 1), encoding="utf-8"
+    )
+    case = tmp_path / "perch-reservoir.toml"
+    case.write_text(source.read_text(encoding="utf-8"), encoding="utf-8")
+    before = sorted(p.name for p in tmp_path.iterdir())
+
+    assert main(["check", str(case)]) == EXIT_INPUT
+    line = one_error_line(capsys)
+    assert "perch-reservoir-counts.csv" in line and 'no column "count"' in line
+    assert sorted(p.name for p in tmp_path.iterdir()) == before

@@ -166,7 +166,8 @@ def compare_with_counts(
             "message": (
                 f"the model misses the counts by more than {COVERAGE:g} u_val at {n_exceed} of "
                 f"{n_times} count times (worst at {times[worst]:g} {case.time_unit}: "
-                f"E = {error[worst]:.4g} {case.population_unit}, u_val = {u_val[worst]:.3g}); "
+                f"E = {error[worst]:.4g} {case.population_unit}, u_val = {u_val[worst]:.3g} "
+                f"{case.population_unit}); "
                 "the growth law itself may be wrong, and a smaller step will not fix it"
             ),
         }

@@ -170,28 +170,6 @@ def _numerical(q: dict) -> float | None:
     return pct + (fmt.finite(_roundoff(q).get("error")) or 0.0)
 
 
-def _roundoff_words(q: dict) -> Cell:
-    statement = _roundoff(q).get("statement")
-    return Cell(statement) if statement else Cell(fmt.NOT_AVAILABLE, True, NO_CURVE)
-
-
-def _curve_step(q: dict, key: str) -> Cell:
-    """The optimum step of the fitted round-off curve, with the crossover beside it."""
-    curve = _roundoff(q).get("curve")
-    if not isinstance(curve, dict):
-        return Cell(fmt.NOT_AVAILABLE, True, NO_CURVE)
-    best, cross = curve.get(key) or {}, curve.get("crossover_step") or {}
-    shown = fmt.step(best.get("value"), best.get("unit"), why="C or D is zero")
-    crossing = fmt.step(cross.get("value"), cross.get("unit"))
-    if shown.missing or crossing.missing:
-        return shown
-    return Cell(
-        f"{fmt.number(best.get('value'), 3)}{fmt.THIN_SPACE}{best.get('unit') or ''}"
-        f" (crossover {fmt.number(cross.get('value'), 3)}{fmt.THIN_SPACE}"
-        f"{cross.get('unit') or ''})"
-    )
-
-
 def _quantity_verdict(q: dict) -> Cell:
     if q.get("adequate"):
         return Cell("✓ within the allowance", tone="ok")
