@@ -93,6 +93,15 @@ def test_time_unit_sets_the_unit_of_results(tmp_path):
     assert case.time_unit == "day" and case.step == 7.0 and case.horizon == 200.0
 
 
+def test_time_unit_keeps_the_users_spelling_of_the_population_unit(tmp_path):
+    """The time unit's text must not stand in for the population unit's spelling."""
+    text = CRAYFISH_COUNTS.replace("crayfish", "kg").replace(
+        'step = "7 day"', 'step = "1 week"\ntime_unit = "day"'
+    )
+    case = load_case(_write(tmp_path, text, MARSH_COUNTS))
+    assert case.population_unit == "kg" and case.time_unit == "day"
+
+
 def test_date_text_of_a_start_with_a_time_of_day():
     assert date_text("2025-03-01T06:00:00", 1.25, 1.0) == "2025-03-02T12:00"
     assert date_text("2025-03-01", 140.3, 1.0) == "2025-07-19"

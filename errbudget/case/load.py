@@ -142,6 +142,58 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
     """
     path = Path(path)
     reader = CaseReader(path)
+    raw_bytes, text, data = _parse_toml(reader, path)
+    reader.table(data, "", TOP_KEYS)
+    check_resources(path, data, samples)
+    title = reader.text(data, "title", "", default="untitled case")
+
+    model_table = reader.table(reader.required(data, "model", ""), "model", MODEL_KEYS)
+    form = reader.text(model_table, "form", "model")
+    unit_text = reader.text(model_table, "unit", "model")
+    population = _population_unit(reader, unit_text)
+    spelled = spelling(unit_text)
+    sim = reader.table(reader.required(data, "simulation", ""), "simulation", SIMULATION_KEYS)
+    scheme_name = reader.text(sim, "scheme", "simulation")
+    try:
+        get_scheme(scheme_name)
+    except InputError as error:
+        raise error.located(reader.source) from None
+    step, horizon, time_unit, calendar = _timing(reader, sim)
+    model, parameters = _model_and_parameters(
+        reader, form, model_table.get("rate"), data, population, time_unit, spelled
+    )
+    quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon, calendar)
+    budget = budget_spec(reader, data.get("budget", {}), population)
+    counts = _counts(reader, data.get("counts"), time_unit, parameters, calendar)
+    fitted = counts.fit if counts is not None else ()
+    correlations = read_correlations(reader, data.get("correlations"), parameters, fitted)
+
+    case = Case(
+        title=title,
+        path=path,
+        text=text,
+        sha256=hashlib.sha256(raw_bytes).hexdigest(),
+        model=model,
+        rate_text=model_table.get("rate"),
+        population_unit=format_unit(population, spelled),
+        counted=is_count(population),
+        time_unit=format_unit(time_unit),
+        scheme=scheme_name,
+        step=step,
+        horizon=horizon,
+        parameters=parameters,
+        quantities=quantities,
+        budget=budget,
+        counts=counts,
+        correlations=correlations,
+        calendar=calendar,
+    )
+    check_design_size(case, budget.samples, str(path), "budget.samples")  # as checked raw
+    return case
+
+
+def _parse_toml(reader: CaseReader, path: Path) -> tuple[bytes, str, dict]:
+    """The file's bytes, its text and the parsed TOML; anything unreadable names the file."""
     raw_bytes = read_regular_file(path, MAX_CASE_BYTES, "case file")
     try:
         # A byte-order mark at the start (some editors on Windows write one) is not TOML.
@@ -154,32 +206,27 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
         raise reader.fail(f"invalid TOML: {error}") from None
     except RecursionError:
         raise reader.fail("invalid TOML: nested too deeply") from None
+    return raw_bytes, text, data
 
-    reader.table(data, "", TOP_KEYS)
-    check_resources(path, data, samples)
-    title = reader.text(data, "title", "", default="untitled case")
 
-    model_table = reader.table(reader.required(data, "model", ""), "model", MODEL_KEYS)
-    form = reader.text(model_table, "form", "model")
-    unit_text = reader.text(model_table, "unit", "model")
+def _population_unit(reader: CaseReader, unit_text: str):
+    """``model.unit`` as a pint unit, checked to be a population (a count, mass or density)."""
     try:
         ensure_count_units(unit_text, population=True)
         population = parse_unit(unit_text, "model.unit")
         check_population_unit(population, unit_text, "model.unit")
     except InputError as error:
         raise error.located(reader.source, "model.unit") from None
+    return population
 
-    sim = reader.table(reader.required(data, "simulation", ""), "simulation", SIMULATION_KEYS)
-    scheme_name = reader.text(sim, "scheme", "simulation")
-    try:
-        get_scheme(scheme_name)
-    except InputError as error:
-        raise error.located(reader.source) from None
+
+def _timing(reader: CaseReader, sim: dict):
+    """Step and horizon in the case's time unit, that unit, and the calendar (start date)."""
     step_q = _time_quantity(reader, reader.required(sim, "step", "simulation"), "simulation.step")
     time_unit = step_q.units
     if "time_unit" in sim:
-        unit_text = reader.text(sim, "time_unit", "simulation")
-        time_unit = _time_quantity(reader, f"1 {unit_text}", "simulation.time_unit").units
+        time_text = reader.text(sim, "time_unit", "simulation")
+        time_unit = _time_quantity(reader, f"1 {time_text}", "simulation.time_unit").units
     step = float(step_q.to(time_unit).magnitude)
     calendar = _calendar(reader, sim, time_unit)
     horizon = _time_or_date(
@@ -197,54 +244,24 @@ def load_case(path: str | Path, *, samples: int | None = None) -> Case:
             "simulation.step",
         )
     _check_step_count(reader, step, horizon, time_unit)
+    return step, horizon, time_unit, calendar
 
+
+def _model_and_parameters(reader, form, rate_text, data, population, time_unit, spelled):
+    """The growth law (built in, or the case's own rate) and its parameters."""
     params_table = reader.required(data, "parameters", "")
     if not isinstance(params_table, dict):
         raise reader.fail("expected a table of parameters", "parameters")
-
-    rate_text = model_table.get("rate")
-    spelled = spelling(unit_text)
     if form == "custom":
-        model, parameters = custom_model(
-            reader, rate_text, params_table, population, time_unit, spelled
-        )
-    else:
-        if rate_text is not None:
-            raise reader.fail('"rate" is only used with form = "custom"', "model.rate")
-        try:
-            model = models.built_in(form)
-        except InputError as error:
-            raise error.located(reader.source) from None
-        parameters = builtin_parameters(reader, model, params_table, population, time_unit, spelled)
-
-    quantities = _quantities(reader, data.get("quantity"), population, time_unit, horizon, calendar)
-    budget = budget_spec(reader, data.get("budget", {}), population)
-    counts = _counts(reader, data.get("counts"), time_unit, parameters, calendar)
-    fitted = counts.fit if counts is not None else ()
-    correlations = read_correlations(reader, data.get("correlations"), parameters, fitted)
-
-    case = Case(
-        title=title,
-        path=path,
-        text=text,
-        sha256=hashlib.sha256(raw_bytes).hexdigest(),
-        model=model,
-        rate_text=rate_text,
-        population_unit=format_unit(population, spelled),
-        counted=is_count(population),
-        time_unit=format_unit(time_unit),
-        scheme=scheme_name,
-        step=step,
-        horizon=horizon,
-        parameters=parameters,
-        quantities=quantities,
-        budget=budget,
-        counts=counts,
-        correlations=correlations,
-        calendar=calendar,
-    )
-    check_design_size(case, budget.samples, str(path), "budget.samples")  # as checked raw
-    return case
+        return custom_model(reader, rate_text, params_table, population, time_unit, spelled)
+    if rate_text is not None:
+        raise reader.fail('"rate" is only used with form = "custom"', "model.rate")
+    try:
+        model = models.built_in(form)
+    except InputError as error:
+        raise error.located(reader.source) from None
+    parameters = builtin_parameters(reader, model, params_table, population, time_unit, spelled)
+    return model, parameters
 
 
 def _check_step_count(reader: CaseReader, step: float, horizon: float, time_unit) -> None:
