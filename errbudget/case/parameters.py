@@ -80,37 +80,8 @@ def builtin_parameters(
 
 
 def custom_model(reader, rate_text, table, population, time_unit, spelled=None):
-    from errbudget.case.law_units import result_unit
-    from errbudget.laws import expression as expr  # custom laws only
-
-    if not isinstance(rate_text, str):
-        raise reader.fail(
-            'form = "custom" needs a rate expression, e.g. rate = "r*N*(1 - N/K)"', "model.rate"
-        )
-    try:
-        used = expr.names_in(rate_text)
-    except InputError as error:
-        raise error.located(reader.source, "model.rate") from None
-    allowed = tuple(name for name in table if name != "N0")
-    for name in sorted(used):
-        if name not in table:
-            raise reader.fail(
-                f"the rate uses {name!r}, which is not in [parameters]"
-                f"{did_you_mean(name, allowed)}",
-                "model.rate",
-            )
-    if "N0" not in table:
-        raise reader.fail("missing parameter 'N0' (the initial population)", "parameters.N0")
-    for name in allowed:
-        if name not in used:
-            raise reader.fail(
-                f"parameter {name!r} is not used by the rate expression", f"parameters.{name}"
-            )
-    try:
-        expression = expr.parse_rate(rate_text, allowed)
-    except InputError as error:
-        raise error.located(reader.source, "model.rate") from None
-
+    """The case's own growth law from ``model.rate`` and its parameters, with units checked."""
+    expression, allowed = _custom_rate(reader, rate_text, table)
     initial = _parameter(reader, "N0", table["N0"], population, "a population level", spelled)
     parameters = {"N0": _check_sign(reader, initial, "parameters.N0", models.INITIAL)}
     for name in allowed:
@@ -127,17 +98,8 @@ def custom_model(reader, rate_text, table, population, time_unit, spelled=None):
             for name in allowed
         }
     )
-    try:
-        result = result_unit(expression, units, "model.rate")
-    except InputError as error:
-        raise error.located(reader.source, "model.rate") from None
     target = population / time_unit
-    if ureg.Quantity(1, result).dimensionality != ureg.Quantity(1, target).dimensionality:
-        raise reader.fail(
-            f'the rate comes out in "{format_unit(result)}"; it must be a population per time '
-            f'such as "{format_unit(target)}"',
-            "model.rate",
-        )
+    result = _rate_unit(reader, expression, units, target)
     # Evaluate in the registry's coherent root units, where every dimensionless combination
     # has its true magnitude, then convert the result to P/T.
     factors = {name: parameters[name].to_coherent for name in allowed}
@@ -175,6 +137,56 @@ def custom_model(reader, rate_text, table, population, time_unit, spelled=None):
         coherent=coherent_form,
     )
     return model, parameters
+
+
+def _custom_rate(reader, rate_text, table):
+    """The parsed rate expression and its parameter names (every one in [parameters] used)."""
+    from errbudget.laws import expression as expr  # custom laws only
+
+    if not isinstance(rate_text, str):
+        raise reader.fail(
+            'form = "custom" needs a rate expression, e.g. rate = "r*N*(1 - N/K)"', "model.rate"
+        )
+    try:
+        used = expr.names_in(rate_text)
+    except InputError as error:
+        raise error.located(reader.source, "model.rate") from None
+    allowed = tuple(name for name in table if name != "N0")
+    for name in sorted(used):
+        if name not in table:
+            raise reader.fail(
+                f"the rate uses {name!r}, which is not in [parameters]"
+                f"{did_you_mean(name, allowed)}",
+                "model.rate",
+            )
+    if "N0" not in table:
+        raise reader.fail("missing parameter 'N0' (the initial population)", "parameters.N0")
+    for name in allowed:
+        if name not in used:
+            raise reader.fail(
+                f"parameter {name!r} is not used by the rate expression", f"parameters.{name}"
+            )
+    try:
+        return expr.parse_rate(rate_text, allowed), allowed
+    except InputError as error:
+        raise error.located(reader.source, "model.rate") from None
+
+
+def _rate_unit(reader, expression, units, target):
+    """The unit the rate comes out in, refused unless it is a population per time."""
+    from errbudget.case.law_units import result_unit
+
+    try:
+        result = result_unit(expression, units, "model.rate")
+    except InputError as error:
+        raise error.located(reader.source, "model.rate") from None
+    if ureg.Quantity(1, result).dimensionality != ureg.Quantity(1, target).dimensionality:
+        raise reader.fail(
+            f'the rate comes out in "{format_unit(result)}"; it must be a population per time '
+            f'such as "{format_unit(target)}"',
+            "model.rate",
+        )
+    return result
 
 
 def _numeric_equilibria(expression, rate, parameters, units, population, n_factor, allowed):
