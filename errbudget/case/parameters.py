@@ -256,29 +256,7 @@ def _parameter(reader, name, entry, unit, meaning, spelled=None) -> Parameter:
     cv = None
     if "cv" in entry:
         cv = reader.number(entry, "cv", where, None, low=0, accepted="; cv is a positive number")
-    kind = entry.get("dist")
-    if kind is not None and kind not in KINDS:
-        raise reader.fail(
-            f"unknown distribution {kind!r}{did_you_mean(str(kind), KINDS)}; "
-            "accepted: " + ", ".join(KINDS),
-            f"{where}.dist",
-        )
-    if kind is None:
-        spread_given = sd is not None or cv is not None
-        if mode is not None:
-            kind = "triangular"
-        elif spread_given and (low is not None or high is not None):
-            kind = "truncated-normal"
-        elif spread_given:
-            kind = "normal"
-        elif low is not None and high is not None:
-            kind = "uniform"
-        else:
-            raise reader.fail(
-                "an uncertain parameter needs sd or cv (normal), low and high (uniform), "
-                'low, mode and high (triangular), or dist = "lognormal" with cv or sd',
-                where,
-            )
+    kind = _kind(reader, entry, where, sd is not None or cv is not None, low, high, mode)
     if cv is not None:
         if value is None:
             raise reader.fail("cv needs a value to be relative to", f"{where}.cv")
@@ -289,37 +267,8 @@ def _parameter(reader, name, entry, unit, meaning, spelled=None) -> Parameter:
         raise reader.fail("sd must be positive", f"{where}.sd")
     if sd is not None and "cv" in entry:
         reader.magnitude(sd, f"cv = {cv!r} of {value:g}", f"{where}.cv", unit)
-
-    def need(*keys):
-        for key, val in zip(
-            keys,
-            (dict(value=value, sd=sd, low=low, high=high, mode=mode)[k] for k in keys),
-            strict=True,
-        ):
-            if val is None:
-                missing = "sd or cv" if key == "sd" else key
-                raise reader.fail(f"a {kind} distribution needs {missing}", f"{where}.{key}")
-
-    if kind in ("normal", "lognormal"):
-        need("value", "sd")
-        if kind == "lognormal" and value <= 0:
-            raise reader.fail("a lognormal parameter needs a positive value", f"{where}.value")
-        dist = Distribution(kind, value, sd=sd)
-    elif kind == "uniform":
-        need("low", "high")
-        dist = Distribution(kind, (low + high) / 2 if value is None else value, low=low, high=high)
-    elif kind == "triangular":
-        need("low", "mode", "high")
-        dist = Distribution(kind, mode if value is None else value, low=low, high=high, mode=mode)
-    else:
-        need("value", "sd")
-        dist = Distribution(
-            kind,
-            value,
-            sd=sd,
-            low=-math.inf if low is None else low,
-            high=math.inf if high is None else high,
-        )
+    stated = dict(value=value, sd=sd, low=low, high=high, mode=mode)
+    dist = _distribution(reader, kind, stated, where)
     if dist.low >= dist.high:
         raise reader.fail("low must be below high", f"{where}.low")
     if kind == "triangular" and not dist.low <= dist.mode <= dist.high:
@@ -329,6 +278,63 @@ def _parameter(reader, name, entry, unit, meaning, spelled=None) -> Parameter:
     _check_draws(reader, dist, where, label)
     given = ", ".join(f"{k} = {v}" for k, v in entry.items())
     return Parameter(name, float(dist.nominal), label, given, dist, coherent)
+
+
+def _kind(reader, entry, where, spread_given, low, high, mode) -> str:
+    """The distribution named by ``dist``, or the one the given keys imply."""
+    kind = entry.get("dist")
+    if kind is not None and kind not in KINDS:
+        raise reader.fail(
+            f"unknown distribution {kind!r}{did_you_mean(str(kind), KINDS)}; "
+            "accepted: " + ", ".join(KINDS),
+            f"{where}.dist",
+        )
+    if kind is not None:
+        return kind
+    if mode is not None:
+        return "triangular"
+    if spread_given and (low is not None or high is not None):
+        return "truncated-normal"
+    if spread_given:
+        return "normal"
+    if low is not None and high is not None:
+        return "uniform"
+    raise reader.fail(
+        "an uncertain parameter needs sd or cv (normal), low and high (uniform), "
+        'low, mode and high (triangular), or dist = "lognormal" with cv or sd',
+        where,
+    )
+
+
+def _distribution(reader, kind: str, given: dict, where: str) -> Distribution:
+    """The distribution of ``kind`` from the given value, sd, low, high and mode."""
+
+    def need(*keys):
+        for key in keys:
+            if given[key] is None:
+                missing = "sd or cv" if key == "sd" else key
+                raise reader.fail(f"a {kind} distribution needs {missing}", f"{where}.{key}")
+
+    value, sd, low, high, mode = (given[k] for k in ("value", "sd", "low", "high", "mode"))
+    if kind in ("normal", "lognormal"):
+        need("value", "sd")
+        if kind == "lognormal" and value <= 0:
+            raise reader.fail("a lognormal parameter needs a positive value", f"{where}.value")
+        return Distribution(kind, value, sd=sd)
+    if kind == "uniform":
+        need("low", "high")
+        return Distribution(kind, (low + high) / 2 if value is None else value, low=low, high=high)
+    if kind == "triangular":
+        need("low", "mode", "high")
+        return Distribution(kind, mode if value is None else value, low=low, high=high, mode=mode)
+    need("value", "sd")
+    return Distribution(
+        kind,
+        value,
+        sd=sd,
+        low=-math.inf if low is None else low,
+        high=math.inf if high is None else high,
+    )
 
 
 def _draws(dist: Distribution) -> tuple[np.ndarray, float]:
