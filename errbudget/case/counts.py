@@ -123,29 +123,8 @@ def read_counts(
 
     filled = [(line, row) for line, row in rows if any(row)]  # blank lines carry no count
     dated = bool(filled) and _ISO_DATE.match(filled[0][1][time_index]) is not None
-    lines: list[int] = []
-    time_cells: list[str] = []
-    moments: list = []  # datetimes, or elapsed times in the file's unit
-    values: list[float] = []
-    for line, row in filled:  # row by row, so the first bad cell in the file is reported
-        time_where = f'line {line}, column "{time_column}"'
-        if dated:
-            moments.append(_parse_date(row[time_index], source, time_where))
-        else:
-            expected = "a number (nor an ISO date, YYYY-MM-DD)"
-            moments.append(_number(row[time_index], source, time_where, expected))
-        count_where = f'line {line}, column "{count_column}"'
-        value = _number(row[count_index], source, count_where)
-        if value < 0:
-            raise InputError(
-                f"{row[count_index]} is negative; counts must be zero or more",
-                source=source,
-                where=count_where,
-            )
-        lines.append(line)
-        time_cells.append(row[time_index])
-        values.append(value)
-
+    columns = (time_index, time_column, count_index, count_column)
+    lines, time_cells, moments, values = _cells(filled, columns, dated, source)
     places = [f'line {line}, column "{time_column}"' for line in lines]
     if dated:
         times = _days_since_start(
@@ -175,6 +154,35 @@ def read_counts(
     )
 
 
+def _cells(filled: list, columns: tuple, dated: bool, source: str):
+    """Line numbers, time cells, times (dates or elapsed numbers) and counts, row by row so
+    that the first bad cell in the file is the one reported."""
+    time_index, time_column, count_index, count_column = columns
+    lines: list[int] = []
+    time_cells: list[str] = []
+    moments: list = []  # datetimes, or elapsed times in the file's unit
+    values: list[float] = []
+    for line, row in filled:
+        time_where = f'line {line}, column "{time_column}"'
+        if dated:
+            moments.append(_parse_date(row[time_index], source, time_where))
+        else:
+            expected = "a number (nor an ISO date, YYYY-MM-DD)"
+            moments.append(_number(row[time_index], source, time_where, expected))
+        count_where = f'line {line}, column "{count_column}"'
+        value = _number(row[count_index], source, count_where)
+        if value < 0:
+            raise InputError(
+                f"{row[count_index]} is negative; counts must be zero or more",
+                source=source,
+                where=count_where,
+            )
+        lines.append(line)
+        time_cells.append(row[time_index])
+        values.append(value)
+    return lines, time_cells, moments, values
+
+
 def _read_bytes(path: Path, where: str) -> bytes:
     """The whole file, after checking it is a regular file within the size and row limits."""
     raw = read_regular_file(path, MAX_FILE_BYTES, f"{where} file")
@@ -190,20 +198,7 @@ def check_file(path: Path | str, where: str = "counts") -> None:
 
 def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[tuple[int, list]]]:
     """Header names and (line number, cells) of each data row, all cells stripped text."""
-    try:
-        text = raw.decode("utf-8-sig")  # spreadsheet exports often start with a byte-order mark
-    except UnicodeDecodeError as error:
-        line = raw[: error.start].count(b"\n") + 1
-        raise InputError(
-            f"{where} file is not UTF-8 text (a byte on this line cannot be decoded); "
-            "save it as UTF-8 CSV",
-            source=source,
-            where=f"line {line}",
-        ) from None
-    if not text.strip():
-        raise InputError(
-            f"{where} file is empty; expected a header line and data rows", source=source
-        )
+    text = _decode(raw, source, where)
     first_line = text.splitlines()[0]
     if not first_line.strip():
         raise InputError(
@@ -223,6 +218,38 @@ def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[t
             "cells separated by commas",
             source=source,
         ) from None
+    cells = _padded(rows, source, where)
+    header = cells[0]
+    if all(name == "" for name in header):
+        raise InputError(
+            "line 1 holds no column names; the first line must name the columns",
+            source=source,
+            where="line 1",
+        )
+    return header, [(number + 2, row) for number, row in enumerate(cells[1:])]
+
+
+def _decode(raw: bytes, source: str, where: str) -> str:
+    """The file's text (UTF-8, a leading byte-order mark dropped); empty files refused."""
+    try:
+        text = raw.decode("utf-8-sig")  # spreadsheet exports often start with a byte-order mark
+    except UnicodeDecodeError as error:
+        line = raw[: error.start].count(b"\n") + 1
+        raise InputError(
+            f"{where} file is not UTF-8 text (a byte on this line cannot be decoded); "
+            "save it as UTF-8 CSV",
+            source=source,
+            where=f"line {line}",
+        ) from None
+    if not text.strip():
+        raise InputError(
+            f"{where} file is empty; expected a header line and data rows", source=source
+        )
+    return text
+
+
+def _padded(rows: list[list[str]], source: str, where: str) -> list[list[str]]:
+    """Stripped cells, short rows padded to the header's width; a longer row is refused."""
     width = len(rows[0])
     for number, row in enumerate(rows[1:], start=2):
         if len(row) > width:
@@ -233,14 +260,7 @@ def _parse_table(raw: bytes, source: str, where: str) -> tuple[list[str], list[t
                 source=source,
             )
     cells = [[cell.strip() for cell in row] + [""] * (width - len(row)) for row in rows]
-    header = cells[0]
-    if all(name == "" for name in header):
-        raise InputError(
-            "line 1 holds no column names; the first line must name the columns",
-            source=source,
-            where="line 1",
-        )
-    return header, [(number + 2, row) for number, row in enumerate(cells[1:])]
+    return cells
 
 
 def _column_index(header: list[str], name: str, source: str) -> int:
