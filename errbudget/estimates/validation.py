@@ -158,34 +158,9 @@ def compare_with_counts(
     usable = np.isfinite(error) & np.isfinite(u_val)
     exceed &= usable
     n_exceed, n_times = int(exceed.sum()), int(usable.sum())
-    flag = None
-    if n_times and (n_exceed >= MIN_EXCEED or n_exceed > EXCEED_SHARE * n_times):
-        worst = int(np.nanargmax(np.where(usable, np.abs(error) / u_val, -np.inf)))
-        flag = {
-            "code": "model-form",
-            "message": (
-                f"the model misses the counts by more than {COVERAGE:g} u_val at {n_exceed} of "
-                f"{n_times} count times (worst at {times[worst]:g} {case.time_unit}: "
-                f"E = {error[worst]:.4g} {case.population_unit}, u_val = {u_val[worst]:.3g} "
-                f"{case.population_unit}); "
-                "the growth law itself may be wrong, and a smaller step will not fix it"
-            ),
-        }
+    flag = _model_form_flag(case, times, error, u_val, usable, n_exceed, n_times)
     share = u_num**2 / np.where(u_val > 0, u_val**2, np.inf)
-    statement = (
-        f"Following the V&V 20 comparison approach (ASME V&V 20-2009), the comparison error "
-        f"E = S - D (model at the {'fitted' if fitted is not None else 'nominal'} parameters "
-        f"minus count) was set against u_val = sqrt(u_num^2 + u_input^2 + u_D^2) at {n_times} "
-        f"count times: |E| > {COVERAGE:g} u_val at {n_exceed}. "
-        + (
-            "The model does not explain the counts within their uncertainty: model-form error "
-            "is likely."
-            if flag
-            else "The differences are within what the known uncertainties explain."
-        )
-        + f" The discretisation error accounts for at most {100 * np.nanmax(share, initial=0):.2g}"
-        "% of u_val^2."
-    )
+    statement = _statement(fitted is not None, n_times, n_exceed, flag, share)
     return {
         "times": _plain(times),
         "unit": case.population_unit,
@@ -204,6 +179,41 @@ def compare_with_counts(
         "flag": flag,
         "statement": statement,
     }
+
+
+def _model_form_flag(case, times, error, u_val, usable, n_exceed: int, n_times: int):
+    """The model-form flag when too many counts lie beyond k u_val, else None."""
+    if not n_times or not (n_exceed >= MIN_EXCEED or n_exceed > EXCEED_SHARE * n_times):
+        return None
+    worst = int(np.nanargmax(np.where(usable, np.abs(error) / u_val, -np.inf)))
+    return {
+        "code": "model-form",
+        "message": (
+            f"the model misses the counts by more than {COVERAGE:g} u_val at {n_exceed} of "
+            f"{n_times} count times (worst at {times[worst]:g} {case.time_unit}: "
+            f"E = {error[worst]:.4g} {case.population_unit}, u_val = {u_val[worst]:.3g} "
+            f"{case.population_unit}); "
+            "the growth law itself may be wrong, and a smaller step will not fix it"
+        ),
+    }
+
+
+def _statement(fitted: bool, n_times: int, n_exceed: int, flag, share: np.ndarray) -> str:
+    """The validation sentence: the comparison made, its outcome and u_num's share."""
+    return (
+        f"Following the V&V 20 comparison approach (ASME V&V 20-2009), the comparison error "
+        f"E = S - D (model at the {'fitted' if fitted else 'nominal'} parameters "
+        f"minus count) was set against u_val = sqrt(u_num^2 + u_input^2 + u_D^2) at {n_times} "
+        f"count times: |E| > {COVERAGE:g} u_val at {n_exceed}. "
+        + (
+            "The model does not explain the counts within their uncertainty: model-form error "
+            "is likely."
+            if flag
+            else "The differences are within what the known uncertainties explain."
+        )
+        + f" The discretisation error accounts for at most {100 * np.nanmax(share, initial=0):.2g}"
+        "% of u_val^2."
+    )
 
 
 def validate_run(case, fit, count_values: np.ndarray | None) -> dict:
