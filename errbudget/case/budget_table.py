@@ -60,68 +60,22 @@ def budget_spec(reader, table, population) -> BudgetSpec:
 def _budget_values(reader, table) -> BudgetSpec:
     table = reader.table(table, "budget", BUDGET_KEYS)
     defaults = BudgetSpec()
+
+    def read(key: str, default, accepted: str, **limits):
+        return reader.number(
+            table, key, "budget", default, accepted=f"; accepted: {accepted}", **limits
+        )
+
     return BudgetSpec(
-        fraction=float(
-            reader.number(
-                table,
-                "fraction",
-                "budget",
-                defaults.fraction,
-                low=0,
-                high=1,
-                accepted="; accepted: 0 < fraction <= 1",
-            )
+        fraction=float(read("fraction", defaults.fraction, "0 < fraction <= 1", low=0, high=1)),
+        samples=read(
+            "samples", defaults.samples, "a power of two such as 512 or 1024", low=0, integer=True
         ),
-        samples=reader.number(
-            table,
-            "samples",
-            "budget",
-            defaults.samples,
-            low=0,
-            integer=True,
-            accepted="; accepted: a power of two such as 512 or 1024",
-        ),
-        seed=reader.number(
-            table,
-            "seed",
-            "budget",
-            defaults.seed,
-            low=0,
-            integer=True,
-            low_open=False,
-            accepted="; accepted: an integer >= 0",
-        ),
-        percentile=float(
-            reader.number(
-                table,
-                "percentile",
-                "budget",
-                defaults.percentile,
-                low=0,
-                high=100,
-                accepted="; accepted: 0 < p <= 100",
-            )
-        ),
-        level=float(
-            reader.number(
-                table,
-                "level",
-                "budget",
-                defaults.level,
-                low=0,
-                high=0.999,
-                accepted="; accepted: 0 < level < 1",
-            )
-        ),
+        seed=read("seed", defaults.seed, "an integer >= 0", low=0, integer=True, low_open=False),
+        percentile=float(read("percentile", defaults.percentile, "0 < p <= 100", low=0, high=100)),
+        level=float(read("level", defaults.level, "0 < level < 1", low=0, high=0.999)),
         memory_limit_mb=float(
-            reader.number(
-                table,
-                "memory_limit",
-                "budget",
-                defaults.memory_limit_mb,
-                low=0,
-                accepted="; accepted: megabytes, e.g. 2048",
-            )
+            read("memory_limit", defaults.memory_limit_mb, "megabytes, e.g. 2048", low=0)
         ),
         time_limit_s=_time_limit(reader, table, defaults.time_limit_s),
     )
