@@ -28,7 +28,7 @@ from errbudget.estimates.drivers import drivers
 from errbudget.estimates.errors import discretisation_errors
 from errbudget.estimates.richardson import richardson
 from errbudget.solve.ensemble import ensemble_params, nominal_params
-from errbudget.solve.stream import stream
+from errbudget.solve.stream import Mapper, stream
 from errbudget.solve.tableaux import get_scheme
 from errbudget.uncertainty.design import design_for_case
 from errbudget.uncertainty.spread import sobol_indices, spread_summary
@@ -79,6 +79,7 @@ def run_case(
     progress: Progress | Callable[[str], None] | None = None,
     fit=None,
     patient: bool = False,
+    mapper: Mapper | None = None,
 ) -> Budget:
     """Compute the error budget of a case.
 
@@ -98,6 +99,10 @@ def run_case(
     patient : bool
         Run even when the predicted time exceeds ``[budget] time_limit`` (otherwise an
         :class:`~errbudget.errors.InputError` says what to lower).
+    mapper : callable, optional
+        Runs the passes over the design in chunks of members as separate tasks, for example
+        on Dask workers (:class:`errbudget.batch.cluster.DaskMapper`); the budget is the
+        same, number for number (see :func:`errbudget.solve.stream.stream`).
 
     Returns
     -------
@@ -136,7 +141,7 @@ def run_case(
     ensemble = passes.ensemble_for(case, ensemble_params(case, sampled), iid, count_times)
 
     clock.stage("case step", f"the case's step over {rows} parameter sets")
-    coarse = passes.case_level(case, ensemble, receiver.advanced)
+    coarse = passes.case_level(case, ensemble, receiver.advanced, mapper)
     speed = work.speed(case, coarse, ensemble.params)
     plan = work.predict(
         case, chosen, coarse.values, iid, scheme.order, speed, float(np.max(coarse.features.scale))
@@ -147,7 +152,7 @@ def run_case(
     clock.stage("reference pass", "the reference levels")
     passed = passes.reference_pass(
         case, ensemble, scheme.order, chosen.steps[-2], chosen.steps[-1],
-        reuse={case.step: coarse}, progress=receiver.advanced,
+        reuse={case.step: coarse}, progress=receiver.advanced, mapper=mapper,
     )  # fmt: skip
     errors = discretisation_errors(case, passed.case_values, passed.reference)
     deeper = _deeper_reference(case, errors, passed.reference, iid, scheme.order, passed, flags)
@@ -155,7 +160,7 @@ def run_case(
         clock.stage("reference pass", "refining the reference for a fine step")
         passed = passes.reference_pass(
             case, ensemble, scheme.order, 2 * deeper, deeper, reuse={case.step: coarse},
-            progress=receiver.advanced,
+            progress=receiver.advanced, mapper=mapper,
         )  # fmt: skip
         errors = discretisation_errors(case, passed.case_values, passed.reference)
     where = f"at the case's step of {case.step:g} {case.time_unit}"
@@ -175,7 +180,7 @@ def run_case(
     collapsed = allowance.collapsed(case, spreads, floor)
 
     clock.stage("search", "searching for the coarsest adequate step")
-    candidates = Candidates(case, ensemble, passed, receiver.advanced)
+    candidates = Candidates(case, ensemble, passed, receiver.advanced, mapper)
     recommendation = recommend(
         case, candidates, passed.reference, allowances=allowed, limits=limits, scale=passed.scale
     )
@@ -190,7 +195,9 @@ def run_case(
     better = None
     if joint is not None:
         clock.stage("better data", "what better data would buy")
-        better = _better_data(case, joint, n_base, seed, passed, limits, recommendation, floor)
+        better = _better_data(
+            case, joint, n_base, seed, passed, limits, recommendation, floor, mapper
+        )
     validation = None
     if case.counts is not None and fit is not None:
         clock.stage("validation", "comparing with the counts")
@@ -351,7 +358,7 @@ def with_fitted_nominal(case: Case, fit) -> Case:
 
 def _better_data(
     case: Case, joint, n_base, seed, passed: ReferencePass, limits, recommendation,
-    floor: float,
+    floor: float, mapper: Mapper | None = None,
 ) -> dict:  # fmt: skip
     """The budget again as if the counts were doubled: the fitted covariance halved.
 
@@ -363,14 +370,16 @@ def _better_data(
         case, ensemble_params(case, design.values), design.independent_rows
     )
     order = get_scheme(case.scheme).order
-    again = passes.reference_pass(case, ensemble, order, passed.finer_step, passed.finest_step)
+    again = passes.reference_pass(
+        case, ensemble, order, passed.finer_step, passed.finest_step, mapper=mapper
+    )
     spreads = [
         spread_summary(again.reference[q, design.independent_rows], case.budget.level)
         for q in range(len(case.quantities))
     ]
     allowed = allowance.allowances(case, [s["sd"] for s in spreads], floor)
     better = recommend(
-        case, Candidates(case, ensemble, again), again.reference, allowances=allowed,
+        case, Candidates(case, ensemble, again, mapper=mapper), again.reference, allowances=allowed,
         limits=limits, scale=again.scale,
     )  # fmt: skip
     return {
