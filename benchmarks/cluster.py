@@ -76,7 +76,9 @@ def batch(paths: list[Path], tmp: Path) -> dict:
     run_cases(warm, out=tmp / "warm-here", samples=SAMPLES)
     run_cases(warm, out=tmp / "warm-there", samples=SAMPLES, client=client)
     client.run(_noop)
-    here, there, overhead, tasks, case_seconds = [], [], [], [], []
+    from distributed import get_task_stream
+
+    here, there, overhead, tasks, case_seconds, gaps = [], [], [], [], [], []
     workers = sum(client.nthreads().values())
     for repeat in range(REPEATS):
         t = time.perf_counter()
@@ -84,8 +86,10 @@ def batch(paths: list[Path], tmp: Path) -> dict:
         here.append(time.perf_counter() - t)
         assert done.exit_code == 0, done.table()
         t = time.perf_counter()
-        done = run_cases(paths, out=tmp / f"there-{repeat}", samples=SAMPLES, client=client)
+        with get_task_stream(client) as stream:
+            done = run_cases(paths, out=tmp / f"there-{repeat}", samples=SAMPLES, client=client)
         wall = time.perf_counter() - t
+        gaps += _gaps(stream.data)
         assert done.exit_code == 0, done.table()
         there.append(wall)
         own = [result.seconds for result in done.results.values()]
@@ -99,10 +103,27 @@ def batch(paths: list[Path], tmp: Path) -> dict:
     return {
         "cases": len(paths), "workers": workers, "here": _median(here), "there": _median(there),
         "here_all": here, "there_all": there, "overhead": _median(overhead),
-        "round_trip": _median(tasks), "case": _median(case_seconds),
+        "round_trip": _median(tasks), "case": _median(case_seconds), "gap": _median(gaps),
+        "gaps": len(gaps),
         "case_mean": statistics.fmean(case_seconds), "driver": driver, "start": start,
         "stop": stop,
     }  # fmt: skip
+
+
+def _gaps(records: list[dict]) -> list[float]:
+    """Idle time of a worker between the end of one case and the start of the next [s]."""
+    found: dict[str, list[tuple[float, float]]] = {}
+    for record in records:
+        if not str(record["key"]).startswith("errbudget-case"):
+            continue
+        for part in record["startstops"]:
+            if part["action"] == "compute":
+                found.setdefault(record["worker"], []).append((part["start"], part["stop"]))
+    gaps = []
+    for spans in found.values():
+        spans.sort()
+        gaps += [nxt[0] - prev[1] for prev, nxt in zip(spans, spans[1:], strict=False)]
+    return gaps
 
 
 def _noop(*_) -> None:
@@ -119,10 +140,10 @@ def _round_trip(client, count: int) -> float:
 
 def _driver_cost(paths: list[Path], written: Path, tmp: Path) -> float:
     """What the driver does alone per case [s]: load and check the case, write its outputs."""
-    from errbudget.batch.driver import _prepare
+    from errbudget.batch.driver import _Planned, _plans
 
     t = time.perf_counter()
-    planned, _ = _prepare(paths, tmp, SAMPLES)
+    planned = [p for p in _plans(paths, tmp, SAMPLES) if isinstance(p, _Planned)]
     load = time.perf_counter() - t
     from errbudget.outputs.files import write_all_atomic
 
@@ -242,10 +263,12 @@ def section() -> list[str]:
         + ", ".join(f"{x:.1f}" for x in b["there_all"])
         + " s).",
         f"A case's own task on a worker: median {b['case']:.2f} s, mean {b['case_mean']:.2f} s.",
-        f"Scheduling overhead per case, (workers x wall - sum of the tasks) / cases: "
-        f"**{b['overhead'] * 1e3:.0f} ms** (target <= {TARGET_OVERHEAD * 1e3:.0f} ms); it counts",
-        "sending the case, the result's way back, the driver's loading and writing while a",
-        "worker waits, and the last cases' tail. An empty task's round trip: "
+        "Scheduling overhead per case: a worker waits a median "
+        f"**{b['gap'] * 1e3:.0f} ms** between the end of one case and the start of the next "
+        f"(target <= {TARGET_OVERHEAD * 1e3:.0f} ms; {b['gaps']} gaps, Dask's task stream);",
+        "all included -- the first cases' wait while the driver loads them, results on their",
+        "way back, the tail where one worker finishes alone -- (workers x wall - sum of the",
+        f"tasks) / cases is {b['overhead'] * 1e3:.0f} ms. An empty task's round trip: "
         f"{b['round_trip'] * 1e3:.1f} ms.",
         f"The driver's own work per case (load and check the case, write its outputs): "
         f"{b['driver'] * 1e3:.0f} ms.",

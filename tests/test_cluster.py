@@ -163,7 +163,7 @@ def test_an_existing_cluster_by_scheduler_file_is_used_and_left_running(connecti
     connection.client.write_scheduler_file(str(scheduler_file))
     workers = list(connection.client.run(os.getpid).values())
     programme = run_cases([SMALL], out=tmp_path / "out", samples=16, cluster=str(scheduler_file))
-    assert programme.exit_code == 0 and programme.where.startswith("the cluster of")
+    assert programme.exit_code == 0 and programme.where.startswith("on the cluster of")
     assert {int(r.where.rsplit(":", 1)[1]) for r in programme.results.values()} <= set(workers)
     assert list(connection.client.run(os.getpid).values()) == workers  # still there
 
@@ -307,3 +307,34 @@ def test_the_api_is_exported_lazily():
 
     assert errbudget.run_cases is direct
     assert np.array_equal(chunks.bounds(5, 2), [(0, 2), (2, 4), (4, 5)])
+
+
+def test_progress_reaches_the_driver_from_the_workers(connection, tmp_path, monkeypatch):
+    import io
+
+    from errbudget.batch import driver
+    from errbudget.batch.progress import BatchBar
+
+    seen: dict[str, list] = {"planned": [], "done": [], "cases": []}
+
+    class Recording(BatchBar):
+        def planned(self, case, member_steps):
+            seen["planned"].append((case, member_steps))
+            super().planned(case, member_steps)
+
+        def case_done(self, case):
+            seen["cases"].append(case)
+            super().case_done(case)
+
+    monkeypatch.setattr(driver, "wanted", lambda quiet: True)  # as on a terminal
+    monkeypatch.setattr(driver, "BatchBar", Recording)
+    monkeypatch.setattr(sys, "stderr", io.StringIO())
+    bad = tmp_path / "misspelt.toml"
+    bad.write_text(SMALL.read_text().replace('form = "logistic"', 'form = "logistik"'))
+    programme = run_cases([SMALL, bad], out=tmp_path, samples=16, client=connection.client)
+    assert programme.exit_code == 2
+    assert sorted(seen["cases"]) == [0, 1]
+    # The prediction is sent while the case still has its passes and report ahead of it.
+    assert [case for case, _ in seen["planned"]] == [0]
+    assert seen["planned"][0][1] > 0
+    assert "2/2 cases" in sys.stderr.getvalue()

@@ -102,7 +102,7 @@ class _Page(HTMLParser):
 def test_the_page_links_each_report_sorts_by_column_and_loads_nothing():
     rows = _rows()
     rows[0] = rows[0].__class__(**{**rows[0].__dict__, "title": "<script>alert(1)</script>"})
-    page = render_overview(rows, when="2025-05-01T10:00:00+00:00", where="this process")
+    page = render_overview(rows, when="2025-05-01T10:00:00+00:00", where="in this process")
     parsed = _Page()
     parsed.feed(page)
     assert parsed.links == [
@@ -161,7 +161,7 @@ def test_a_batch_in_this_process_keeps_failures_per_case(tmp_path):
     bad.write_text(good.read_text(encoding="utf-8").replace('"logistic"', '"logistik"'))
     out = tmp_path / "out"
     programme = run_cases([good, bad], out=out, samples=16)
-    assert programme.exit_code == 2 and programme.where == "this process"
+    assert programme.exit_code == 2 and programme.where == "in this process"
     assert [row.verdict for row in programme.rows] == ["NOT ADEQUATE", FAILED]
     assert "model.form" in programme.rows[1].message and str(bad) in programme.rows[1].message
     assert (out / "negative-euler" / "budget.html").is_file()

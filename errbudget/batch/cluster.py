@@ -125,15 +125,15 @@ def connect(choice: ClusterChoice | str) -> Connection:
                 silence_logs=logging.ERROR,
             )
             client = distributed.Client(cluster)
-            where = f"a local cluster of {choice.workers} worker processes"
+            where = f"on a local cluster of {choice.workers} worker processes"
         elif choice.address is not None:
             client = distributed.Client(choice.address, timeout=CONNECT_TIMEOUT)
-            where = f"the cluster at {choice.address}"
+            where = f"on the cluster at {choice.address}"
         else:
             client = distributed.Client(
                 scheduler_file=str(choice.scheduler_file), timeout=CONNECT_TIMEOUT
             )
-            where = f"the cluster of {choice.scheduler_file}"
+            where = f"on the cluster of {choice.scheduler_file}"
     except (OSError, ValueError, TimeoutError, RuntimeError) as error:
         if cluster is not None:
             cluster.close()

@@ -31,7 +31,7 @@ def run_batch(args, choice: ClusterChoice, debug: bool = False) -> int:
     not_adequate = sum(row.verdict == NOT_ADEQUATE for row in rows)
     failed = programme.failed
     print(
-        f"errbudget: {len(rows)} case{'s' if len(rows) != 1 else ''} on {programme.where} in "
+        f"errbudget: {len(rows)} case{'s' if len(rows) != 1 else ''} {programme.where} in "
         f"{programme.seconds:.1f} s: {adequate} adequate, {not_adequate} not adequate, "
         f"{len(failed)} failed"
     )

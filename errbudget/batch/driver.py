@@ -15,7 +15,7 @@ and its own exit code (2 bad input, 1 internal error) in the overview, and the o
 from __future__ import annotations
 
 import time
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 from pathlib import Path
@@ -159,27 +159,19 @@ def run_cases(
         client = connection.client
     try:
         where = _where(client, connection)
-        planned, rows = _prepare(paths, out, samples)
         bar = BatchBar(len(paths)) if wanted(quiet) else None
-        for failed in rows.values():
-            if bar is not None:
-                bar.case_done(failed.order)
         options = {"samples": samples, "seed": seed, "patient": patient}
         try:
-            results = _run_all(planned, options, client, bar, split_rows)
+            # Each case is loaded, checked and sent on its way in turn: the first ones run
+            # while the later ones load.
+            results, rows = _run_all(_plans(paths, out, samples), options, client, bar,
+                                     split_rows)  # fmt: skip
         finally:
             if bar is not None:
                 bar.close()
     finally:
         if connection is not None:
             connection.close()
-    for plan in planned:
-        result = results[plan.index]
-        rows[plan.index] = (
-            row_for_failure(plan.index, plan.path, result.message, result.exit_code)
-            if result.failed
-            else row_for_budget(plan.index, plan.path, result.rendered.data)
-        )
     ordered_rows = [rows[i] for i in range(len(paths))]
     programme = Programme(ordered_rows, results, out, where, time.perf_counter() - started)
     _write_overview(programme)
@@ -190,17 +182,17 @@ def _where(client, connection) -> str:
     if connection is not None:
         return connection.where
     if client is None:
-        return "this process"
-    return f"the cluster at {client.scheduler.address}"
+        return "in this process"
+    return f"on the cluster at {client.scheduler.address}"
 
 
-def _prepare(paths: list[Path], out: Path, samples: int | None):
-    """Load and check every case before anything runs; failures become rows."""
+def _plans(paths: list[Path], out: Path, samples: int | None) -> Iterator[_Planned | Row]:
+    """Each case loaded and checked, in turn: ready to run, or its failure as a row."""
     from errbudget.case.load import load_case
     from errbudget.case.resources import check_design_size, design_rows, precheck_case
     from errbudget.outputs.files import check_output_folder, check_stem
 
-    planned, failures, folders = [], {}, {}
+    folders = {}
     for index, path in enumerate(paths):
         try:
             precheck_case(path, samples)
@@ -218,11 +210,11 @@ def _prepare(paths: list[Path], out: Path, samples: int | None):
             check_output_folder(folder)
             folders[folder] = case.path
             rows = design_rows(case, samples if samples is not None else case.budget.samples)
-            planned.append(_Planned(index, path, case, folder, rows))
         except Exception as error:  # noqa: BLE001 - one case's fault stays that case's
             code, message = _failure(error, path)
-            failures[index] = row_for_failure(index, path, message, code)
-    return planned, failures
+            yield row_for_failure(index, path, message, code)
+            continue
+        yield _Planned(index, path, case, folder, rows)
 
 
 def _failure(error: BaseException, place: Path) -> tuple[int, str]:
@@ -237,29 +229,48 @@ def _failure(error: BaseException, place: Path) -> tuple[int, str]:
     return EXIT_INTERNAL, f"internal error: {type(error).__name__}: {error}"
 
 
-def _run_all(planned, options, client, bar, split_rows) -> dict[int, CaseResult]:
-    """Run every planned case and write its outputs; the results by position."""
+def _run_all(plans, options, client, bar, split_rows):
+    """Run every case and write its outputs: the results and the overview rows by position."""
+    results: dict[int, CaseResult] = {}
+    rows: dict[int, Row] = {}
+
+    def done(plan: _Planned, result: CaseResult) -> None:
+        result = results[plan.index] = _finish(plan, result, bar)
+        rows[plan.index] = (
+            row_for_failure(plan.index, plan.path, result.message, result.exit_code)
+            if result.failed
+            else row_for_budget(plan.index, plan.path, result.rendered.data)
+        )
+
     if client is None:
-        return {plan.index: _finish(plan, _run_here(plan, options, bar), bar) for plan in planned}
+        for plan in plans:
+            if _failed(plan, rows, bar):
+                continue
+            done(plan, _run_here(plan, options, bar))
+        return results, rows
     from distributed import as_completed
 
     from errbudget.batch.cluster import DaskMapper
 
     if bar is not None:
         client.subscribe_topic(PROGRESS_TOPIC, bar.event)
-    results: dict[int, CaseResult] = {}
     try:
-        futures = {}
-        for plan in (p for p in planned if p.rows < split_rows):
+        futures, large = {}, []
+        for plan in plans:
+            if _failed(plan, rows, bar):
+                continue
+            if plan.rows >= split_rows:
+                large.append(plan)
+                continue
             task = _task(plan, options, events=bar is not None)
             if isinstance(task, CaseResult):  # its history could not be read
-                results[plan.index] = _finish(plan, task, bar)
+                done(plan, task)
                 continue
             key = f"errbudget-case-{plan.index}-{time.time_ns()}"
             futures[client.submit(run_task, task, key=key, pure=False)] = plan
         mapper = DaskMapper(client)
-        for plan in (p for p in planned if p.rows >= split_rows):
-            results[plan.index] = _finish(plan, _run_here(plan, options, bar, mapper), bar)
+        for plan in large:  # from here, its member chunks as tasks
+            done(plan, _run_here(plan, options, bar, mapper))
         for future in as_completed(futures):
             plan = futures[future]
             try:
@@ -267,11 +278,21 @@ def _run_all(planned, options, client, bar, split_rows) -> dict[int, CaseResult]
             except Exception as error:  # noqa: BLE001 - the worker died or the task was lost
                 text = f"internal error: the task of this case failed on the cluster: {error}"
                 result = CaseResult(plan.index, None, EXIT_INTERNAL, f"{plan.path}: {text}")
-            results[plan.index] = _finish(plan, result, bar)
+            done(plan, result)
     finally:
         if bar is not None:
             client.unsubscribe_topic(PROGRESS_TOPIC)
-    return results
+    return results, rows
+
+
+def _failed(plan, rows: dict[int, Row], bar) -> bool:
+    """Record a case that failed to load or check (a row already); True if it did."""
+    if not isinstance(plan, Row):
+        return False
+    rows[plan.order] = plan
+    if bar is not None:
+        bar.case_done(plan.order)
+    return True
 
 
 def _finish(plan: _Planned, result: CaseResult, bar) -> CaseResult:

@@ -218,4 +218,4 @@ def _number(value: float) -> str:
 
 def _cut(text: str, width: int = NAME_WIDTH) -> str:
     text = " ".join(str(text).split())  # one line, whatever the name holds
-    return text if len(text) <= width else text[: width - 1] + "…"
+    return text if len(text) <= width else text[: width - 3] + "..."

@@ -43,7 +43,7 @@ def render_overview(rows: list[Row], *, when: str, where: str) -> str:
     when : str
         When the batch ran (ISO 8601).
     where : str
-        Where it ran ("this process", "a local cluster of 2 workers", an address).
+        Where it ran ("in this process", "on a local cluster of 2 worker processes", ...).
     """
     counts = Counter(row.verdict for row in rows)
     return (
