@@ -13,6 +13,7 @@ import threading
 import time
 
 REFRESH = 0.25  # seconds between two redraws at most
+SETTLED = 0.05  # share of the batch done before a time left is guessed without a finished case
 
 
 def wanted(quiet: bool) -> bool:
@@ -34,7 +35,8 @@ class BatchBar:
             leave=False,
             dynamic_ncols=True,
             unit="case",
-            bar_format="{desc}: {n_fmt}/{total_fmt} cases |{bar}| {postfix}",
+            # tqdm puts ", " before the postfix: it follows the elapsed time
+            bar_format="{desc}: {n_fmt}/{total_fmt} cases |{bar}| {elapsed} so far{postfix}",
         )
         self.total = max(total, 1)
         self.planned_steps: dict[int, int] = {}
@@ -95,7 +97,7 @@ class BatchBar:
             if case not in self.finished and planned > 0:
                 share += min(self.done_steps.get(case, 0) / planned, 1.0)
         share /= self.total
-        if share <= 0:
+        if not self.finished and share < SETTLED:  # too early to say
             return None
         seconds = (now - self.started) * (1 - share) / share
         return f"{seconds / 60:.0f} min" if seconds >= 120 else f"{seconds:.0f} s"
