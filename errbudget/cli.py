@@ -75,6 +75,13 @@ def build_parser() -> argparse.ArgumentParser:
         action="store_true",
         help="run even when the predicted time exceeds [budget] time_limit (with a progress bar)",
     )
+    run.add_argument(
+        "--cluster",
+        metavar="WHERE",
+        type=_cluster,
+        help="run the cases on Dask and write an overview: local, local:N (N worker "
+        "processes), tcp://HOST:PORT or a scheduler file (needs errbudget[cluster])",
+    )
     check = commands.add_parser("check", help="validate cases and print what they resolve to")
     check.add_argument("cases", nargs="+", metavar="CASE", type=Path)
     for sub in (run, check):  # SUPPRESS: a flag given before the command is kept
@@ -97,6 +104,15 @@ def _design_size(text: str) -> int:
             f"{1 << ((MAX_DESIGN_ROWS // MIN_DESIGN_BLOCK).bit_length() - 1)} or fewer"
         )
     return value
+
+
+def _cluster(text: str):
+    from errbudget.batch.cluster import parse_cluster  # light: Dask is imported only to run
+
+    try:
+        return parse_cluster(text)
+    except InputError as error:
+        raise argparse.ArgumentTypeError(error.message) from None
 
 
 def _non_negative_int(text: str) -> int:
@@ -136,6 +152,10 @@ def _main(arguments: list[str]) -> int:
             raise InputError(
                 "choose a command: run or check (see errbudget --help)", "command line"
             )
+        if getattr(args, "cluster", None) is not None:  # a batch: failures kept per case
+            from errbudget.batch.command import run_batch
+
+            return run_batch(args, args.cluster, debug)
         from errbudget.case.resources import precheck_case
 
         samples = getattr(args, "samples", None)
@@ -256,11 +276,9 @@ class _Notice:
 
 
 def _run_one(case, folder: Path, args, emit) -> dict:
+    from errbudget.batch.files import commit, render_outputs
     from errbudget.budget.run import run_case
     from errbudget.outputs import history
-    from errbudget.outputs.files import dumps, write_all_atomic
-    from errbudget.outputs.tables import ladder_csv, summary_csv
-    from errbudget.report import render_html
 
     progress = _progress(args.quiet, case.path.stem)
     try:
@@ -279,31 +297,21 @@ def _run_one(case, folder: Path, args, emit) -> dict:
     finally:
         if progress is not None:
             progress.close()
-    data = budget.to_dict()
     timestamp = datetime.now(UTC).isoformat(timespec="seconds")
-    data["run"]["timestamp"] = timestamp
     with history.locked(folder):
-        line = history.entry(data, timestamp, series=budget.series)
-        data["since_last"] = history.compare(history.last_entry(folder), line)
         # Everything is rendered in memory first, then written as one set (all temporaries,
         # then the renames), and the history line is appended last: a failure before the
         # renames leaves the earlier outputs and history byte for byte as they were.
-        files = {
-            folder / "budget.json": dumps(data),
-            folder / "budget.html": render_html(data, budget.series, case.text),
-            folder / "ladder.csv": ladder_csv(data),
-            folder / "summary.csv": summary_csv(data),
-        }
-        history_line = history.line_text(line)
-        write_all_atomic(files)
-        history.append(folder, line, text=history_line)
+        rendered = render_outputs(budget, case.text, history.last_entry(folder), timestamp)
+        commit(folder, rendered)
     from errbudget.outputs import terminal
 
+    data = rendered.data
     if args.json:
         return data
     if args.quiet:
         emit(terminal.verdict_line(data, str(case.path)))
     else:
-        written = [path.name for path in files] + [f"{history.HISTORY_NAME} (appended)"]
+        written = list(rendered.files) + [f"{history.HISTORY_NAME} (appended)"]
         emit(terminal.summary(data, str(case.path), folder, written))
     return data

@@ -11,7 +11,9 @@ import ast
 from pathlib import Path
 
 PACKAGE = Path(__file__).resolve().parents[1] / "errbudget"
-ORDER = ("laws", "solve", "case", "uncertainty", "estimates", "budget", "outputs", "report")
+ORDER = (
+    "laws", "solve", "case", "uncertainty", "estimates", "budget", "outputs", "report", "batch",
+)  # fmt: skip
 ROOT_HELPERS = ("errors", "version")
 
 

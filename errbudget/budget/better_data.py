@@ -24,6 +24,7 @@ from errbudget.budget.wording import plain_step, with_unit
 from errbudget.case.distributions import Distribution
 from errbudget.case.load import Case
 from errbudget.solve.ensemble import ensemble_params
+from errbudget.solve.stream import Mapper
 from errbudget.solve.tableaux import get_scheme
 from errbudget.uncertainty.design import design_for_case
 from errbudget.uncertainty.spread import spread_summary
@@ -130,25 +131,28 @@ def _steps(case: Case, step: float) -> str:
 
 
 def doubled_counts(case: Case, joint, n_base: int, seed: int, passed: ReferencePass, limits,
-                   recommendation: Recommendation, floor: float) -> dict:  # fmt: skip
+                   recommendation: Recommendation, floor: float,
+                   mapper: Mapper | None = None) -> dict:  # fmt: skip
     """The budget again as if the counts were doubled: the fitted covariance halved.
 
     Better data narrow the parameter spread, which shrinks the allowance for numerical
-    error: the adequate step may become finer.
+    error: the adequate step may become finer. ``mapper`` runs member chunks as tasks.
     """
     design = design_for_case(case, joint.scaled(0.5), n_base, seed)
     ensemble = passes.ensemble_for(
         case, ensemble_params(case, design.values), design.independent_rows
     )
     order = get_scheme(case.scheme).order
-    again = passes.reference_pass(case, ensemble, order, passed.finer_step, passed.finest_step)
+    again = passes.reference_pass(
+        case, ensemble, order, passed.finer_step, passed.finest_step, mapper=mapper
+    )
     spreads = [
         spread_summary(again.reference[q, design.independent_rows], case.budget.level)
         for q in range(len(case.quantities))
     ]
     allowed = allowance.allowances(case, [s["sd"] for s in spreads], floor)
     better = recommend(
-        case, Candidates(case, ensemble, again), again.reference, allowances=allowed,
+        case, Candidates(case, ensemble, again, mapper=mapper), again.reference, allowances=allowed,
         limits=limits, scale=again.scale,
     )  # fmt: skip
     return {

@@ -22,7 +22,7 @@ from errbudget.estimates import artefacts
 from errbudget.estimates.ladder import RATIO
 from errbudget.estimates.richardson import richardson
 from errbudget.laws.models import stable_equilibria
-from errbudget.solve.stream import Level, Readout, stream
+from errbudget.solve.stream import Level, Mapper, Readout, stream
 from errbudget.solve.trajectory import last_index, tail_start
 
 SERIES_POINTS = 400  # most time points kept for the report's time series
@@ -106,13 +106,20 @@ def series_index(case: Case) -> np.ndarray:
 
 
 def case_level(
-    case: Case, ensemble: Ensemble, progress: Callable[[int], None] | None = None
+    case: Case,
+    ensemble: Ensemble,
+    progress: Callable[[int], None] | None = None,
+    mapper: Mapper | None = None,
 ) -> Level:
-    """The case's step over every member, with the states the report's series keep."""
+    """The case's step over every member, with the states the report's series keep.
+
+    ``mapper`` runs the chunks of members as tasks (see :func:`errbudget.solve.stream.stream`),
+    here and in the other passes.
+    """
     readout = Readout(keep={case.step: series_index(case)}, keep_members=ensemble.members)
     return stream(
         case, ensemble.params, [case.step], levels=ensemble.levels, readout=readout,
-        progress=progress,
+        progress=progress, mapper=mapper,
     )[0]  # fmt: skip
 
 
@@ -124,6 +131,7 @@ def reference_pass(
     finest_step: float,
     reuse: Mapping[float, Level] | None = None,
     progress: Callable[[int], None] | None = None,
+    mapper: Mapper | None = None,
 ) -> ReferencePass:
     """Step the case's step and the two reference levels over every member, once each.
 
@@ -147,7 +155,7 @@ def reference_pass(
     if wanted:
         stepped = stream(
             case, ensemble.params, wanted, levels=ensemble.levels, readout=readout,
-            progress=progress,
+            progress=progress, mapper=mapper,
         )  # fmt: skip
         known.update({level.step: level for level in stepped})
     coarse, finer, finest = known[case.step], known[finer_step], known[finest_step]
@@ -180,12 +188,14 @@ class Candidates:
         ensemble: Ensemble,
         passed: ReferencePass,
         progress: Callable[[int], None] | None = None,
+        mapper: Mapper | None = None,
     ):
         self.case = case
         self.ensemble = ensemble
         self.finest = passed.finest
         self.levels: dict[float, Level] = dict(passed.levels)
         self.progress = progress
+        self.mapper = mapper
         self.weights: np.ndarray | None = None
 
     def weighted(self, weights: np.ndarray) -> Candidates:
@@ -205,7 +215,7 @@ class Candidates:
         if step not in self.levels:  # shared by every weighted view
             found = stream(
                 self.case, self.ensemble.params, [step], levels=self.ensemble.levels,
-                progress=self.progress,
+                progress=self.progress, mapper=self.mapper,
             )[0]  # fmt: skip
             self.levels[step] = found
         return self.levels[step]

@@ -30,7 +30,7 @@ from errbudget.estimates.errors import discretisation_errors
 from errbudget.estimates.richardson import richardson
 from errbudget.solve import engine
 from errbudget.solve.ensemble import ensemble_params, nominal_params
-from errbudget.solve.stream import stream
+from errbudget.solve.stream import Mapper, stream
 from errbudget.solve.tableaux import get_scheme
 from errbudget.uncertainty.design import design_for_case
 from errbudget.uncertainty.spread import sobol_indices, spread_summary
@@ -81,6 +81,7 @@ def run_case(
     progress: Progress | Callable[[str], None] | None = None,
     fit=None,
     patient: bool = False,
+    mapper: Mapper | None = None,
 ) -> Budget:
     """Compute the error budget of a case.
 
@@ -100,6 +101,10 @@ def run_case(
     patient : bool
         Run even when the predicted time exceeds ``[budget] time_limit`` (otherwise an
         :class:`~errbudget.errors.InputError` says what to lower).
+    mapper : callable, optional
+        Runs the passes over the design in chunks of members as separate tasks, for example
+        on Dask workers (:class:`errbudget.batch.cluster.DaskMapper`); the budget is the
+        same, number for number (see :func:`errbudget.solve.stream.stream`).
 
     Returns
     -------
@@ -138,7 +143,7 @@ def run_case(
     ensemble = passes.ensemble_for(case, ensemble_params(case, sampled), iid, count_times)
 
     clock.stage("case step", f"the case's step over {rows} parameter sets")
-    coarse = passes.case_level(case, ensemble, receiver.advanced)
+    coarse = passes.case_level(case, ensemble, receiver.advanced, mapper)
     speed = work.speed(case, coarse, ensemble.params)
     plan = work.predict(
         case, chosen, coarse.values, iid, scheme.order, speed, float(np.max(coarse.features.scale))
@@ -155,7 +160,7 @@ def run_case(
     clock.stage("reference pass", "the reference levels")
     passed = passes.reference_pass(
         case, ensemble, scheme.order, chosen.steps[-2], chosen.steps[-1],
-        reuse={case.step: coarse}, progress=receiver.advanced,
+        reuse={case.step: coarse}, progress=receiver.advanced, mapper=mapper,
     )  # fmt: skip
     errors = discretisation_errors(case, passed.case_values, passed.reference)
     deeper = _deeper_reference(case, errors, passed.reference, iid, scheme.order, passed, flags)
@@ -163,7 +168,7 @@ def run_case(
         clock.stage("reference pass", "refining the reference for a fine step")
         passed = passes.reference_pass(
             case, ensemble, scheme.order, 2 * deeper, deeper, reuse={case.step: coarse},
-            progress=receiver.advanced,
+            progress=receiver.advanced, mapper=mapper,
         )  # fmt: skip
         errors = discretisation_errors(case, passed.case_values, passed.reference)
     where = f"at the case's step of {case.step:g} {case.time_unit}"
@@ -183,7 +188,7 @@ def run_case(
     collapsed = allowance.collapsed(case, spreads, floor)
 
     clock.stage("search", "searching for the coarsest adequate step")
-    candidates = Candidates(case, ensemble, passed, receiver.advanced)
+    candidates = Candidates(case, ensemble, passed, receiver.advanced, mapper)
     recommendation = recommend(
         case, candidates, passed.reference, allowances=allowed, limits=limits, scale=passed.scale
     )
@@ -198,7 +203,7 @@ def run_case(
     clock.stage("better data", "what better data would buy")
     if joint is not None:
         better = better_data.doubled_counts(
-            case, joint, n_base, seed, passed, limits, recommendation, floor
+            case, joint, n_base, seed, passed, limits, recommendation, floor, mapper
         )
     else:
         better = better_data.per_input(

@@ -25,7 +25,7 @@ def neutral(value):
     return value.replace("\r\n", "\n").replace("\r", "\n")
 
 
-def _csv(header: list[str], rows: list[list]) -> str:
+def csv_text(header: list[str], rows: list[list]) -> str:
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow(header)
@@ -41,7 +41,7 @@ def ladder_csv(budget: dict) -> str:
     for q in budget["quantities"]:
         for level in q["discretisation"]["ladder"]:
             rows.append([q["name"], level["step"], time_unit, level["value"], q["unit"]])
-    return _csv(["quantity", "step", "step_unit", "value", "value_unit"], rows)
+    return csv_text(["quantity", "step", "step_unit", "value", "value_unit"], rows)
 
 
 def summary_csv(budget: dict) -> str:
@@ -93,4 +93,4 @@ def summary_csv(budget: dict) -> str:
         "allowance",
         "adequate",
     ]
-    return _csv(header, rows)
+    return csv_text(header, rows)

@@ -14,7 +14,7 @@ and the path used when numba is not available.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -37,6 +37,9 @@ KINDS = {"value": 0, "time-to": 1, "peak": 2, "minimum": 3}
 N_FEATURES = 6  # finite, largest, smallest, scale, turns, late turns; then two per level
 CHUNK_MEMBERS = 1 << 16  # members per kernel call at most
 PROGRESS_WORK = 50_000_000  # member-steps per kernel call when progress is reported
+# A mapper runs ``function`` on each item and yields the results in the items' order:
+# the builtin ``map`` (in this process) or a cluster's (errbudget.batch.cluster.DaskMapper).
+Mapper = Callable[[Callable, Sequence], Iterable]
 
 
 @dataclass(frozen=True)
@@ -103,6 +106,7 @@ def stream(
     scheme: Scheme | None = None,
     threads: int | None = None,
     progress: Callable[[int], None] | None = None,
+    mapper: Mapper | None = None,
 ) -> list[Level]:
     """Step every member of ``params`` at each of ``steps`` and read everything off.
 
@@ -124,12 +128,21 @@ def stream(
         Threads sharing the members (the results do not depend on it).
     progress : callable, optional
         Called with the member-steps of each chunk of members as it is done.
+    mapper : callable, optional
+        Runs the chunks of :data:`MAPPED_CHUNK` members as separate tasks,
+        ``mapper(run_chunk, chunks)``, yielding each chunk's levels in order (see
+        :func:`errbudget.solve.chunks.mapped`); the results are the same, bit for bit.
 
     Returns
     -------
     list of Level, in the order of ``steps``.
     """
     scheme = scheme or get_scheme(problem.scheme)
+    if mapper is not None:
+        from errbudget.solve.chunks import mapped
+
+        return mapped(problem, params, steps, mapper, levels=levels, readout=readout,
+                      scheme=scheme, progress=progress)  # fmt: skip
     found = ensemble.compiled(problem.model, scheme)
     if found is None:
         return stream_reference(problem, params, steps, levels=levels, readout=readout,
