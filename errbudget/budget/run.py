@@ -118,21 +118,90 @@ def run_case(
     seed = seed if seed is not None else case.budget.seed
     scheme = get_scheme(case.scheme)
     flags: list[dict] = input_flags(case.parameters)
+    case, fit, joint = _fit(case, fit, flags, clock)
+    prepared = _prepare(case, scheme, joint, fit, n_base, seed, flags, clock)
+    measured = _measure(case, scheme, prepared, seed, flags, clock, patient, mapper)
+    evidence, better, candidates = _decide(
+        case, scheme, prepared, measured, joint, n_base, seed, clock, mapper
+    )
+    validation = None
+    if case.counts is not None and fit is not None:
+        clock.stage("validation", "comparing with the counts")
+        from errbudget.estimates.validation import validate_run
 
-    joint = None
-    if case.counts is not None:
-        clock.stage("fit", "fitting the counts")
-        from errbudget.uncertainty.calibrate import fit_from_counts, joint_from_fit
+        validation = validate_run(case, fit, measured.passed.count_values)
+    if fit is not None:
+        evidence.series["counts"] = {
+            "times": np.asarray(fit.counts.times, float),
+            "counts": np.asarray(fit.counts.counts, float),
+        }
+    passed = measured.passed
+    facts = RunFacts(
+        samples=n_base,
+        seed=seed,
+        parameter_sets=prepared.rows,
+        reference_steps=(passed.finer_step, passed.finest_step),
+        elapsed=clock.elapsed(),
+        stages=clock.stages,
+        prediction=measured.plan.timing(),
+        work={
+            **measured.plan.to_dict(),
+            "member_steps": int(sum(lv.member_steps for lv in candidates.levels.values())),
+        },
+    )
+    data = budget_json(
+        case, scheme, evidence, flags, fit=fit, run=facts, better_data=better, validation=validation
+    )
+    return Budget(data, evidence.series)
 
-        fit = fit if fit is not None else fit_from_counts(case)
-        joint = joint_from_fit(fit, flags)
-        if joint is not None:
-            case = with_fitted_nominal(case, fit)
 
+@dataclass(frozen=True)
+class _Prepared:
+    """What the passes run on: the ladder, the design and the ensemble built from it."""
+
+    chosen: ladder.Ladder
+    design: object  # Design or None (nothing uncertain)
+    sampled: dict
+    iid: np.ndarray
+    rows: int
+    ensemble: Ensemble
+
+
+@dataclass(frozen=True)
+class _Measured:
+    """The ensemble's numbers: the plan, the reference levels, the errors and the estimates."""
+
+    plan: work.WorkPlan
+    coarse: object  # the case-step Level
+    passed: ReferencePass
+    errors: np.ndarray
+    spreads: list[dict]
+    indices: list[dict]
+    drivers: list
+    rounding: dict
+    limits: dict
+
+
+def _fit(case: Case, fit, flags: list[dict], clock: _Clock):
+    """With counts: the fit, the joint distribution of the fitted inputs, and the case with
+    the fitted values as nominal (the case unchanged and None, None without counts)."""
+    if case.counts is None:
+        return case, fit, None
+    clock.stage("fit", "fitting the counts")
+    from errbudget.uncertainty.calibrate import fit_from_counts, joint_from_fit
+
+    fit = fit if fit is not None else fit_from_counts(case)
+    joint = joint_from_fit(fit, flags)
+    if joint is not None:
+        case = with_fitted_nominal(case, fit)
+    return case, fit, joint
+
+
+def _prepare(case, scheme, joint, fit, n_base, seed, flags, clock) -> _Prepared:
+    """The refinement ladder, the Sobol design and the ensemble of parameter sets."""
     clock.stage("ladder", "choosing the refinement ladder")
     chosen = ladder.build(case)
     flags.extend(_ladder_flags(case, chosen, scheme.order))
-
     clock.stage("design", "sampling the parameter design")
     design = design_for_case(case, joint, n_base, seed)
     rows = design.n_rows if design is not None else 1
@@ -141,14 +210,19 @@ def run_case(
     iid = design.independent_rows if design is not None else np.array([0])
     count_times = fit.counts.times if fit is not None else None
     ensemble = passes.ensemble_for(case, ensemble_params(case, sampled), iid, count_times)
+    return _Prepared(chosen, design, sampled, iid, rows, ensemble)
 
-    clock.stage("case step", f"the case's step over {rows} parameter sets")
+
+def _measure(case, scheme, prepared: _Prepared, seed, flags, clock, patient, mapper) -> _Measured:
+    """The case's step (and from it the predicted work), the reference levels, the errors at
+    the case's step, the parameter spread and Sobol indices, round-off and stability."""
+    receiver, ensemble, iid = clock.progress, prepared.ensemble, prepared.iid
+    clock.stage("case step", f"the case's step over {prepared.rows} parameter sets")
     coarse = passes.case_level(case, ensemble, receiver.advanced, mapper)
     speed = work.speed(case, coarse, ensemble.params)
-    plan = work.predict(
-        case, chosen, coarse.values, iid, scheme.order, speed, float(np.max(coarse.features.scale))
-    )
-    work.check(case, plan, rows, patient)
+    scale = float(np.max(coarse.features.scale))
+    plan = work.predict(case, prepared.chosen, coarse.values, iid, scheme.order, speed, scale)
+    work.check(case, plan, prepared.rows, patient)
     receiver.planned(plan)
     # The round-off runs (one member, numpy in three arithmetics, mostly Python) go on beside
     # the ensemble passes, whose compiled loop releases the interpreter (started after the
@@ -158,9 +232,10 @@ def run_case(
     background.shutdown(wait=False)
 
     clock.stage("reference pass", "the reference levels")
+    steps = prepared.chosen.steps
     passed = passes.reference_pass(
-        case, ensemble, scheme.order, chosen.steps[-2], chosen.steps[-1],
-        reuse={case.step: coarse}, progress=receiver.advanced, mapper=mapper,
+        case, ensemble, scheme.order, steps[-2], steps[-1], reuse={case.step: coarse},
+        progress=receiver.advanced, mapper=mapper,
     )  # fmt: skip
     errors = discretisation_errors(case, passed.case_values, passed.reference)
     deeper = _deeper_reference(case, errors, passed.reference, iid, scheme.order, passed, flags)
@@ -175,69 +250,55 @@ def run_case(
     flags.extend(artefacts.flags(passed.masks, where))
 
     clock.stage("estimates", "parameter spread, Sobol indices and round-off")
-    spreads, indices = _spreads(case, design, passed.reference, iid, seed)
+    spreads, indices = _spreads(case, prepared.design, passed.reference, iid, seed)
     flags.extend(_unsettled_indices(case, indices))
     found_drivers = (
-        drivers(errors, sampled) if design is not None else [None] * len(case.quantities)
+        drivers(errors, prepared.sampled)
+        if prepared.design is not None
+        else [None] * len(case.quantities)
     )
     rounding = rounding_job.result()
     limits = _limits(case, scheme, ensemble)
+    return _Measured(
+        plan, coarse, passed, errors, spreads, indices, found_drivers, rounding, limits
+    )
 
+
+def _decide(case, scheme, prepared, measured: _Measured, joint, n_base, seed, clock, mapper):
+    """Allowances, the step search, the report's series and what better data would buy."""
+    passed, ensemble, iid = measured.passed, prepared.ensemble, prepared.iid
     floor = allowance.resolution(case, passed.scale)
-    allowed = allowance.allowances(case, [s["sd"] for s in spreads], floor)
-    collapsed = allowance.collapsed(case, spreads, floor)
+    allowed = allowance.allowances(case, [s["sd"] for s in measured.spreads], floor)
+    collapsed = allowance.collapsed(case, measured.spreads, floor)
 
     clock.stage("search", "searching for the coarsest adequate step")
-    candidates = Candidates(case, ensemble, passed, receiver.advanced, mapper)
+    candidates = Candidates(case, ensemble, passed, clock.progress.advanced, mapper)
     recommendation = recommend(
-        case, candidates, passed.reference, allowances=allowed, limits=limits, scale=passed.scale
-    )
+        case, candidates, passed.reference, allowances=allowed, limits=measured.limits,
+        scale=passed.scale,
+    )  # fmt: skip
     clock.stage("series", "series for the report")
-    report_series = series.series(case, passed, errors)
-    report_series["stability"] = series.stability_map(case, sampled, limits, ensemble.members)
-    if fit is not None:
-        report_series["counts"] = {
-            "times": np.asarray(fit.counts.times, float),
-            "counts": np.asarray(fit.counts.counts, float),
-        }
+    report_series = series.series(case, passed, measured.errors)
+    report_series["stability"] = series.stability_map(
+        case, prepared.sampled, measured.limits, ensemble.members
+    )
     clock.stage("better data", "what better data would buy")
     if joint is not None:
         better = better_data.doubled_counts(
-            case, joint, n_base, seed, passed, limits, recommendation, floor, mapper
+            case, joint, n_base, seed, passed, measured.limits, recommendation, floor, mapper
         )
     else:
         better = better_data.per_input(
-            case, candidates, passed, sampled, iid, limits, floor, recommendation.step
-        )
-    validation = None
-    if case.counts is not None and fit is not None:
-        clock.stage("validation", "comparing with the counts")
-        from errbudget.estimates.validation import validate_run
-
-        validation = validate_run(case, fit, passed.count_values)
+            case, candidates, passed, prepared.sampled, iid, measured.limits, floor,
+            recommendation.step,
+        )  # fmt: skip
     evidence = Evidence(
-        chosen, errors, spreads, indices, found_drivers, rounding, limits, recommendation,
-        report_series, allowances=allowed, collapsed=collapsed, resolution=floor,
-        cleared=_cleared(case, passed, iid),
+        prepared.chosen, measured.errors, measured.spreads, measured.indices, measured.drivers,
+        measured.rounding, measured.limits, recommendation, report_series, allowances=allowed,
+        collapsed=collapsed, resolution=floor, cleared=_cleared(case, passed, iid),
         nominal_reference=_nominal_reference(case, passed, scheme.order),
     )  # fmt: skip
-    facts = RunFacts(
-        samples=n_base,
-        seed=seed,
-        parameter_sets=rows,
-        reference_steps=(passed.finer_step, passed.finest_step),
-        elapsed=clock.elapsed(),
-        stages=clock.stages,
-        prediction=plan.timing(),
-        work={
-            **plan.to_dict(),
-            "member_steps": int(sum(lv.member_steps for lv in candidates.levels.values())),
-        },
-    )
-    data = budget_json(
-        case, scheme, evidence, flags, fit=fit, run=facts, better_data=better, validation=validation
-    )
-    return Budget(data, report_series)
+    return evidence, better, candidates
 
 
 def _nominal_reference(case: Case, passed: ReferencePass, order: int) -> np.ndarray:
