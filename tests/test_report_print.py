@@ -1,5 +1,7 @@
 """The report on paper and as read: every demo case prints on at most five A4 pages, page 1
-carries the memo, and the visible text shows no raw key of budget.json.
+carries the memo, and the visible text shows no raw key of budget.json. So does the rerun of
+the perch-reservoir demo after three new counts (the report's "Since the last run" section),
+whose page 1 also carries the one-line summary of the rerun.
 
 The printing needs headless Chromium (Debian's ``chromium``) and poppler's ``pdfinfo`` and
 ``pdftotext`` (``poppler-utils``); ``.ci/run`` tries to install both. Without them these
@@ -8,6 +10,7 @@ tests are skipped with the reason, unless ``ERRBUDGET_REQUIRE_PRINT`` is set, wh
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import shutil
@@ -16,9 +19,10 @@ from html.parser import HTMLParser
 from pathlib import Path
 
 import pytest
-from conftest import DEMO_CASES
+from conftest import DEMO_CASES, PERCH_LATER, REPO
 
 from errbudget.cli import main
+from errbudget.report.memo import since_brief
 
 MAX_PAGES = 5  # the printed A4 document of a demo case
 TIMEOUT = 60  # [s] per browser call
@@ -91,19 +95,78 @@ def printed(tmp_path_factory):
     return result
 
 
+@pytest.fixture(scope="module")
+def reprinted(tmp_path_factory):
+    """The perch-reservoir demo run, three later counts appended, run again, and printed."""
+    _tool("chromium")
+    folder = tmp_path_factory.mktemp("reprinted")
+    for name in ("perch-reservoir.toml", "perch-reservoir-counts.csv"):
+        shutil.copy(REPO / "cases" / name, folder / name)
+    case, out = folder / "perch-reservoir.toml", folder / "reports"
+    args = ["run", str(case), "--out", str(out), "--samples", SAMPLES, "--quiet"]
+    assert main(args) == 0
+    with (folder / "perch-reservoir-counts.csv").open("a") as stream:
+        stream.writelines(f"{t},{c}\n" for t, c in PERCH_LATER)
+    assert main(args) == 0
+    pdf = folder / "perch-reservoir-rerun.pdf"
+    _print(out / case.stem / "budget.html", pdf, folder / "profile")
+    return out / case.stem, pdf
+
+
 @pytest.mark.parametrize("case", DEMO_CASES, ids=lambda p: p.stem)
 def test_demo_report_prints_on_at_most_five_pages(printed, case):
     _, pdf = printed[case.stem]
     assert 1 <= _pages(pdf) <= MAX_PAGES
 
 
+def test_rerun_report_prints_on_at_most_five_pages(reprinted):
+    folder, pdf = reprinted
+    assert json.loads((folder / "budget.json").read_text())["since_last"]["new_counts"]
+    assert 1 <= _pages(pdf) <= MAX_PAGES
+
+
+def test_rerun_page_one_carries_the_rerun_summary(reprinted):
+    folder, pdf = reprinted
+    data = json.loads((folder / "budget.json").read_text())
+    _assert_memo(data, _page_text(pdf, 1))
+    summary = " ".join(since_brief(data).replace("\u202f", " ").split())
+    assert summary.startswith(f"Since the last run ({data['since_last']['previous_time']}): ")
+    assert "the counts changed" in summary and "3 new counts" in summary
+    assert summary in _page_text(pdf, 1)
+
+
+def test_rerun_prints_the_comparison_and_what_a_decision_needs(reprinted):
+    """Fitting on five pages dropped nothing: each part is somewhere in the printed text."""
+    _, pdf = reprinted
+    text = " ".join(_page_text(pdf, page) for page in range(1, _pages(pdf) + 1))
+    for part in (
+        "The forecast and its numerical error",
+        "What weighs on the decision",
+        "Since the last run",
+        "The last forecast against the new counts",  # the figure
+        "The last forecast against the counts that came in since",  # its table
+        "The forecast before and now",
+        "The fitted parameters before and now",
+        "Validation against the counts",
+        "What this budget does not cover",
+        "local regulations and the advice of qualified biologists",
+        "How it was made",
+        "Methods",
+        "The case file",
+    ):
+        assert part in text, part
+    assert re.search(r"230 day 4655 fish .* 260 day 4690 fish .* 290 day 4710 fish", text)
+
+
 @pytest.mark.parametrize("case", DEMO_CASES, ids=lambda p: p.stem)
 def test_page_one_carries_the_memo(printed, case):
-    import json
-
     folder, pdf = printed[case.stem]
     data = json.loads((folder / "budget.json").read_text())
-    text = _page_text(pdf, 1)
+    _assert_memo(data, _page_text(pdf, 1))
+
+
+def _assert_memo(data: dict, text: str) -> None:
+    """Page 1's text holds the question, the verdict, the steps and each quantity and flag."""
     verdict = data["verdict"]
     assert "Is the time step of this forecast small enough" in text
     assert ("NOT ADEQUATE" if not verdict["adequate"] else "ADEQUATE") in text
@@ -148,9 +211,14 @@ def _keys(value) -> set[str]:
 
 @pytest.mark.parametrize("case", DEMO_CASES, ids=lambda p: p.stem)
 def test_visible_text_holds_no_raw_key(printed, case):
-    import json
+    _assert_no_raw_key(printed[case.stem][0])
 
-    folder, _ = printed[case.stem]
+
+def test_rerun_visible_text_holds_no_raw_key(reprinted):
+    _assert_no_raw_key(reprinted[0])
+
+
+def _assert_no_raw_key(folder: Path) -> None:
     data = json.loads((folder / "budget.json").read_text())
     parser = _Visible()
     parser.feed((folder / "budget.html").read_text())

@@ -8,12 +8,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import PERCH_LATER as LATER
 
 from errbudget.cli import main
 
 CASES = Path(__file__).resolve().parents[1] / "cases"
-# Invented later counts near the fitted logistic curve of the demo (K about 4700 fish).
-LATER = [(230, 4655), (260, 4690), (290, 4710)]
 
 
 def _run(case: Path, out: Path) -> dict:

@@ -23,6 +23,10 @@ from errbudget.report.plotting import (
     to_svg,
 )
 
+PANEL_IN = 1.9  # height of one row of panels [in]
+LEGEND_IN = 0.42  # room for the shared legend below them (two rows of three) [in]
+AXIS_TICKS = 6  # about this many labelled ticks on a panel's error axis (many decades)
+
 
 def convergence(budget: dict) -> Figure:
     """|ladder value - reference| against the step, log-log, with the formal-order slope."""
@@ -45,7 +49,7 @@ def convergence(budget: dict) -> Figure:
     cols = 2 if len(panels) > 1 else 1
     rows = math.ceil(len(panels) / cols)
     with matplotlib.rc_context(RC):
-        fig, axes = new_figure(0.9 + 2.2 * rows, rows, cols)
+        fig, axes = new_figure(LEGEND_IN + PANEL_IN * rows, rows, cols)
         alts, handles = [], {}
         for ax, (q, points) in zip(axes.flat, panels, strict=False):
             ax.set_title(quantity_title(q), pad=8)
@@ -67,12 +71,12 @@ def convergence(budget: dict) -> Figure:
                 )
         for ax in list(axes.flat)[len(panels) :]:
             ax.set_axis_off()
-        fig.tight_layout(rect=(0, 0.5 / fig.get_figheight() + 0.04, 1, 1))
+        fig.tight_layout(rect=(0, LEGEND_IN / fig.get_figheight(), 1, 1))
         fig.legend(
             [h for h, _ in handles.values()],
             [lbl for _, lbl in handles.values()],
             loc="lower center",
-            ncols=2,
+            ncols=3,
             fontsize=7.5,
         )
         alt = "Log-log convergence plot. " + "; ".join(alts) + "."
@@ -129,9 +133,10 @@ def _panel(ax, q: dict, points: list[tuple[float, float]], steps: dict) -> str:
     ax.set_xlabel(f"time step [{unit_t}]")
     ax.set_ylabel(f"|value − reference| [{unit}]")
     ax.grid(which="major", color=GRID, linewidth=0.6)
-    plain_ticks(ax, "x", (1.0, 2.0, 5.0))
+    low, high = ax.get_xlim()
+    plain_ticks(ax, "x", (1.0, 2.0, 5.0) if high / low < 10**2.1 else (1.0,))
     low, high = ax.get_ylim()
-    plain_ticks(ax, "y", (1.0, 2.0, 5.0) if high / low < 10**2.5 else (1.0,))
+    plain_ticks(ax, "y", (1.0, 2.0, 5.0) if high / low < 10**2.5 else (1.0,), numticks=AXIS_TICKS)
     return (
         f"{q.get('name')}: error falls from {plain(err[-1])} {unit} at step "
         f"{plain(h[-1])} {unit_t} to {plain(err[0])} {unit} at step "

@@ -27,6 +27,7 @@ from errbudget.report.plotting import (
     to_svg,
 )
 
+HEIGHT_IN = 2.8  # population above its numerical error: about a third of a printed page
 # a white box keeps line labels legible where they cross the ensemble band
 LABEL_BOX = {"facecolor": "white", "alpha": 0.75, "edgecolor": "none", "pad": 0.8}
 # The run's time series this figure draws (see Budget.series).
@@ -52,7 +53,9 @@ def forecast(budget: dict, series: dict) -> Figure:
     units = (sim.get("step", {}).get("unit", ""), sim.get("population_unit", ""))
     step_value = finite(sim.get("step", {}).get("value"))
     with matplotlib.rc_context(RC):
-        fig, axes = new_figure(3.5, 2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.25]})
+        fig, axes = new_figure(
+            HEIGHT_IN, 2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.25]}
+        )
         top, bottom = axes[0, 0], axes[1, 0]
         alt = _population_panel(top, arrays, step_value, units)
         marked = _counts_and_marks(top, budget, series, *units)

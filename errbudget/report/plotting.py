@@ -28,6 +28,7 @@ BLUE, ORANGE, VERMILLION = "#0072B2", "#E69F00", "#D55E00"
 SKY, GREEN, PURPLE, INK = "#56B4E9", "#009E73", "#CC79A7", "#22303a"
 GRID = "#d9dee2"
 WIDTH_IN = 6.9  # figure width [in]: inside the 180 mm print column, so print is at scale 1
+HALF_WIDTH_IN = 3.4  # a figure set beside a table: half the print column, less the gap
 PANEL_IN = 1.45  # height of one per-quantity bar panel [in]
 LOG_SPAN = 20.0  # bar values spanning more than this factor are drawn on a log axis
 LOG_TICKS = 8  # at most about this many labelled ticks on a log axis
@@ -94,8 +95,8 @@ def to_svg(fig: MplFigure, key: str, alt: str) -> Markup:
     return Markup(head + title + text[head_end:])
 
 
-def new_figure(height: float, rows: int = 1, cols: int = 1, **kwargs):
-    fig = MplFigure(figsize=(WIDTH_IN, height))
+def new_figure(height: float, rows: int = 1, cols: int = 1, width: float = WIDTH_IN, **kwargs):
+    fig = MplFigure(figsize=(width, height))
     FigureCanvasAgg(fig)  # the Agg canvas, set explicitly for this figure only
     axes = fig.subplots(rows, cols, squeeze=False, **kwargs)
     return fig, axes
@@ -115,12 +116,15 @@ def tick_text(value, _position=None) -> str:
     return text.removeprefix("1 × ")  # a bare power of ten reads "10⁻¹²", not "1 × 10⁻¹²"
 
 
-def plain_ticks(ax, axis: str = "both", log_subs: tuple = (1.0,)) -> None:
-    """Plain-number tick labels; on log axes majors at ``log_subs`` x 10^k, minors unlabelled."""
+def plain_ticks(
+    ax, axis: str = "both", log_subs: tuple = (1.0,), numticks: int = LOG_TICKS
+) -> None:
+    """Plain-number tick labels; on log axes majors at ``log_subs`` x 10^k (about ``numticks``
+    of them), minors unlabelled."""
     for name in ("x", "y") if axis == "both" else (axis,):
         target = ax.xaxis if name == "x" else ax.yaxis
         if target.get_scale() == "log":
-            target.set_major_locator(ticker.LogLocator(base=10, subs=log_subs, numticks=LOG_TICKS))
+            target.set_major_locator(ticker.LogLocator(base=10, subs=log_subs, numticks=numticks))
             target.set_minor_locator(ticker.NullLocator())  # unlabelled minors: slow, little use
         target.set_major_formatter(ticker.FuncFormatter(tick_text))
 

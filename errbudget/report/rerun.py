@@ -15,6 +15,7 @@ from errbudget.report.fmt import plain
 from errbudget.report.plotting import (
     BLUE,
     GRID,
+    HALF_WIDTH_IN,
     INK,
     RC,
     SKY,
@@ -24,7 +25,7 @@ from errbudget.report.plotting import (
     to_svg,
 )
 
-HEIGHT_IN = 2.3  # a small figure: a handful of points
+HEIGHT_IN = 2.0  # a small figure beside its table: a handful of points (legend below)
 
 
 def new_counts_figure(budget: dict, series: dict | None) -> Figure:
@@ -38,7 +39,7 @@ def new_counts_figure(budget: dict, series: dict | None) -> Figure:
     unit, unit_t = new.get("unit") or "", new.get("time_unit") or ""
     exceed = np.asarray(new.get("exceed") or [False] * times.size, dtype=bool)
     with matplotlib.rc_context(RC):
-        fig, axes = new_figure(HEIGHT_IN)
+        fig, axes = new_figure(HEIGHT_IN, width=HALF_WIDTH_IN)
         ax = axes[0, 0]
         _band(ax, series or {}, times)
         ax.errorbar(
@@ -64,8 +65,10 @@ def new_counts_figure(budget: dict, series: dict | None) -> Figure:
         ax.set_xlabel(f"time [{unit_t}]")
         ax.set_ylabel(f"population [{unit}]")
         ax.grid(color=GRID, linewidth=0.6)
-        ax.legend(loc="best", fontsize=7)
-        fig.tight_layout()
+        # Below the axes (inside, it would hide the few points of a half-width figure); no
+        # tight_layout, which would squeeze the axes to make room: the crop takes the margins.
+        # The pad (in font sizes) clears the tick labels and the axis label.
+        ax.legend(loc="upper left", bbox_to_anchor=(-0.02, 0.0), fontsize=7, borderaxespad=4.4)
         alt = (
             f"Chart of {times.size} new counts against the last forecast: "
             + "; ".join(

@@ -32,7 +32,9 @@ from errbudget.report.plotting import (
     to_svg,
 )
 
-CURVE_PANEL_IN = 2.2  # height of one round-off curve panel [in]
+CURVE_PANEL_IN = 1.8  # height of one round-off curve panel [in]
+CURVE_LEGEND_IN = 0.4  # room for the shared legend below the panels (two rows) [in]
+PANEL_TICKS = 5  # about this many labelled ticks on a curve panel's error axis
 BAR_PANEL_IN = 1.45  # height of a round-off bar panel (no fitted curve) [in]
 CURVE_POINTS = 200  # points of a fitted curve on its log-spaced step grid
 REACH = 3.0  # the fitted curve runs this factor beyond the extreme steps and the optimum
@@ -96,7 +98,7 @@ def roundoff_curves(budget: dict) -> Figure | None:
     cols = 2 if len(quantities) > 1 else 1  # side by side: half the height on paper
     rows = math.ceil(len(quantities) / cols)
     with matplotlib.rc_context(RC):
-        fig, axes = new_figure(0.5 + CURVE_PANEL_IN * rows, rows, cols)
+        fig, axes = new_figure(CURVE_LEGEND_IN + CURVE_PANEL_IN * rows, rows, cols)
         for ax in axes.flat[len(quantities) :]:
             ax.set_visible(False)
         alts = []
@@ -117,7 +119,7 @@ def roundoff_curves(budget: dict) -> Figure | None:
         for ax in axes.flat:
             for handle, label in zip(*ax.get_legend_handles_labels(), strict=True):
                 handles.setdefault(label, handle)
-        fig.tight_layout(rect=(0, 0.55 / fig.get_figheight() + 0.02, 1, 1), h_pad=1.2)
+        fig.tight_layout(rect=(0, CURVE_LEGEND_IN / fig.get_figheight(), 1, 1), h_pad=1.2)
         if handles:
             fig.legend(list(handles.values()), list(handles), loc="lower center", ncols=3)
         alt = "Round-off curves. " + "; ".join(alts) + "."
@@ -180,7 +182,8 @@ def _curve_panel(ax, cv: dict, case_step, unit_t: str, unit: str) -> None:
     ax.set_xlabel(f"time step [{unit_t}]")
     ax.set_ylabel(f"error [{unit}]")
     ax.grid(which="major", color=GRID, linewidth=0.6)
-    plain_ticks(ax)
+    plain_ticks(ax, "x")
+    plain_ticks(ax, "y", numticks=PANEL_TICKS)  # a short axis over many decades
 
 
 def _bars(ax, q: dict) -> list:

@@ -34,7 +34,7 @@ from errbudget.report.plotting import (
 )
 
 CENTRAL = (5.0, 95.0)  # percentiles bounding the ensemble's central 90 % range of the input
-MAP_HEIGHT_IN = 2.8  # height of the stability map [in]
+MAP_HEIGHT_IN = 2.2  # height of the stability map [in]
 MIN_POINTS = 2  # a map needs at least this many members with a finite limit
 MAX_MEMBERS_DRAWN = 256  # up to this many members, each is its own dot
 SLICES = 128  # beyond it, members are summarised over this many equal slices of the input
@@ -185,7 +185,10 @@ def _legend(ax, entries: list[tuple]) -> None:
         labels,
         handler_map={tuple: HandlerTuple(ndivide=1)},
         loc="upper center",
-        bbox_to_anchor=(0.5, -0.2),
+        # Anchored at the axes' foot and padded (in font sizes) past the tick labels and the
+        # axis label, so it clears them whatever the figure's height.
+        bbox_to_anchor=(0.5, 0.0),
+        borderaxespad=4.4,
         ncols=2,
         fontsize=7,
     )
