@@ -1,7 +1,7 @@
 """Scale-out on Dask: a batch of 64 cases and a design of 2**20 members on ``local:2``, each
 against one process, in one run.
 
-1. A batch of 64 small cases (the four demo cases, 16 seeds each, ``--samples 64``): wall time
+1. A batch of 64 small cases (the demo cases in turn, seeds 1, 2, ..., ``--samples 64``): wall time
    in this process (one case after another) and on a two-worker LocalCluster, and the
    scheduling overhead per case: the worker time the batch spends on anything but the cases,
    (workers x wall - sum of the cases' own task times) / cases, and the round trip of an
@@ -33,7 +33,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 DEMO = sorted((ROOT / "cases").glob("*.toml"))
 HARVEST = ROOT / "benchmarks" / "cases" / "harvest-year.toml"
-COPIES = int(os.environ.get("BENCH_COPIES", "16"))  # seeds per demo case: 64 cases
+CASES = int(os.environ.get("BENCH_CASES", "64"))  # cases in the batch: the demos in turn
 SAMPLES = 64
 REPEATS = int(os.environ.get("BENCH_REPEATS", "3"))  # timings are medians of this many
 MEMBERS = 1 << int(os.environ.get("BENCH_MEMBERS_LOG2", "20"))
@@ -44,18 +44,20 @@ TARGET_SPEED = 0.80  # share of the single-process engine's member-steps per sec
 
 
 def programme(folder: Path) -> list[Path]:
-    """64 case files: each demo case with seeds 1 to COPIES (counts files copied beside)."""
+    """CASES case files: the demo cases in turn, each copy with a seed of its own (1, 2, ...),
+    the counts files copied beside them. The first len(DEMO) are one of each demo."""
+    for extra in DEMO[0].parent.glob("*.csv"):
+        shutil.copy(extra, folder / extra.name)
+    texts = [path.read_text(encoding="utf-8") for path in DEMO]
     paths = []
-    for path in DEMO:
-        text = path.read_text(encoding="utf-8")
-        for extra in path.parent.glob(f"{path.stem}*.csv"):
-            shutil.copy(extra, folder / extra.name)
-        for seed in range(1, COPIES + 1):
-            copy = folder / f"{path.stem}-{seed:02d}.toml"
-            lines = [f"seed = {seed}" if line.startswith("seed =") else line
-                     for line in text.splitlines()]  # fmt: skip
-            copy.write_text("\n".join(lines) + "\n", encoding="utf-8")
-            paths.append(copy)
+    for index in range(CASES):
+        path, text = DEMO[index % len(DEMO)], texts[index % len(DEMO)]
+        seed = index // len(DEMO) + 1
+        copy = folder / f"{path.stem}-{seed:02d}.toml"
+        lines = [f"seed = {seed}" if line.startswith("seed =") else line
+                 for line in text.splitlines()]  # fmt: skip
+        copy.write_text("\n".join(lines) + "\n", encoding="utf-8")
+        paths.append(copy)
     return paths
 
 
@@ -72,7 +74,7 @@ def batch(paths: list[Path], tmp: Path) -> dict:
     connection = connect("local:2")
     start = time.perf_counter() - started
     client = connection.client
-    warm = [paths[i * COPIES] for i in range(len(DEMO))]  # each law once, everywhere
+    warm = paths[: len(DEMO)]  # each law once, everywhere
     run_cases(warm, out=tmp / "warm-here", samples=SAMPLES)
     run_cases(warm, out=tmp / "warm-there", samples=SAMPLES, client=client)
     client.run(_noop)
@@ -245,8 +247,8 @@ def section() -> list[str]:
     lines = [
         TITLE,
         "",
-        f"### A batch of {b['cases']} cases (the four demo cases x {COPIES} seeds, "
-        f"--samples {SAMPLES})",
+        f"### A batch of {b['cases']} cases (the {len(DEMO)} demo cases in turn, each copy with "
+        f"a seed of its own, --samples {SAMPLES})",
         "",
         f"Medians of {REPEATS} batches, alternated, all in this run; each case runs, renders its",
         "report and is written as `errbudget run` does.",

@@ -21,7 +21,6 @@ from pathlib import Path
 
 import numpy as np
 
-from errbudget.case.dates import SimulationStart
 from errbudget.case.files import read_regular_file
 from errbudget.case.limits import MAX_COUNTS_BYTES, MAX_MAGNITUDE
 from errbudget.case.resources import check_count_rows, check_counts_file
@@ -73,6 +72,7 @@ def read_counts(
     time_factor: float = 1.0,
     days_to_internal: float | None = None,
     start: str | None = None,
+    start_is_case_start: bool = False,
     where: str = "counts",
 ) -> Counts:
     """Read and check a counts file.
@@ -91,7 +91,9 @@ def read_counts(
         column holds ISO dates.
     start : str, optional
         ISO date of time zero when the time column holds dates; default: the first date in
-        the file. Not accepted when the column holds elapsed times.
+        the file. Not accepted when the column holds elapsed times, unless
+        ``start_is_case_start``: then it is the case's ``[simulation] start``, from which
+        elapsed times count too.
     where : str
         What the file is called in messages and the case-file table it came from.
 
@@ -132,7 +134,14 @@ def read_counts(
         )
     else:
         times = _scaled_elapsed(
-            moments, time_cells, places, time_factor, start, source, time_column, where
+            moments,
+            time_cells,
+            places,
+            time_factor,
+            start is not None and not start_is_case_start,
+            source,
+            time_column,
+            where,
         )
     _check_order(times, time_cells, lines, source, time_column)
     if len(values) < MIN_ROWS:
@@ -332,13 +341,14 @@ def _scaled_elapsed(
     cells: list[str],
     places: list[str],
     time_factor: float,
-    start: str | None,
+    own_start: bool,
     source: str,
     column: str,
     where: str,
 ) -> list[float]:
-    """Elapsed times in the file's unit times ``time_factor`` [internal unit]."""
-    if start is not None and not isinstance(start, SimulationStart):
+    """Elapsed times in the file's unit times ``time_factor`` [internal unit]; ``own_start``:
+    the counts table names a start of its own, which elapsed times cannot use."""
+    if own_start:
         raise InputError(
             f'start is only used when the time column holds dates; column "{column}" '
             "holds elapsed times, which already count from the start",
@@ -414,5 +424,6 @@ def read_case_counts(case) -> Counts | None:
         time_factor=spec.time_factor,
         days_to_internal=spec.days_to_internal,
         start=spec.start,
+        start_is_case_start=spec.start_is_case_start,
         where="counts",
     )

@@ -25,12 +25,6 @@ ISO_DATE = re.compile(
 )
 
 
-class SimulationStart(str):
-    """The ISO text of ``[simulation] start`` handed to the counts reader as time 0 of dated
-    counts; unlike ``[counts] start`` it is no error for counts given as elapsed times, which
-    count from that same start."""
-
-
 def is_date(value: object) -> bool:
     """Whether ``value`` is a date as a case file may write it (TOML date, date-time, ISO text)."""
     if isinstance(value, dt.date | dt.datetime):

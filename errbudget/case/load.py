@@ -14,7 +14,7 @@ from pathlib import Path
 
 from errbudget.case.budget_table import BudgetSpec, budget_spec
 from errbudget.case.correlations import describe_correlations, read_correlations
-from errbudget.case.dates import SimulationStart, date_text, is_date, moment, start_text
+from errbudget.case.dates import date_text, is_date, moment, start_text
 from errbudget.case.dates import elapsed as date_elapsed
 from errbudget.case.distributions import Distribution
 from errbudget.case.files import read_regular_file
@@ -67,7 +67,8 @@ class CountsSpec:
     count_column: str
     error: str
     fit: tuple[str, ...]
-    start: str | None
+    start: str | None  # ISO text of time 0 of dated counts
+    start_is_case_start: bool = False  # start is [simulation] start, not [counts] start
 
 
 @dataclass(frozen=True)
@@ -406,7 +407,7 @@ def _counts(reader, table, time_unit, parameters, calendar: Calendar) -> CountsS
             "counts.start",
         )
     if calendar.start is not None:
-        start = SimulationStart(calendar.start)
+        start = calendar.start
     elif start is not None:
         try:
             start = start_text(*moment(start, "counts.start"))
@@ -423,6 +424,7 @@ def _counts(reader, table, time_unit, parameters, calendar: Calendar) -> CountsS
         error=error,
         fit=tuple(fit),
         start=start,
+        start_is_case_start=calendar.start is not None,
     )
 
 

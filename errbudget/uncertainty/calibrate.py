@@ -17,7 +17,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from errbudget.case.counts import Counts, read_counts
+from errbudget.case.counts import Counts, read_case_counts
 from errbudget.case.load import Case
 from errbudget.solve.ensemble import solve
 from errbudget.solve.tableaux import SCHEMES
@@ -97,15 +97,7 @@ def simulator(case: Case, names: tuple[str, ...], times: np.ndarray):
 def fit_from_counts(case: Case) -> CaseFit:
     """Read the case's counts and fit its ``[counts] fit`` parameters by maximum likelihood."""
     spec = case.counts
-    counts = read_counts(
-        spec.path,
-        time_column=spec.time_column,
-        count_column=spec.count_column,
-        time_factor=spec.time_factor,
-        days_to_internal=spec.days_to_internal,
-        start=spec.start,
-        where="counts",
-    )
+    counts = read_case_counts(case)
     names = spec.fit
     simulate, solver = simulator(case, names, counts.times)
     start = np.array([case.parameters[n].nominal for n in names])
