@@ -28,6 +28,7 @@ from errbudget.report.plotting import (
 )
 
 HEIGHT_IN = 2.8  # population above its numerical error: about a third of a printed page
+LEGEND_IN = 0.32  # room for the legend below the panels (two rows of three) [in]
 # a white box keeps line labels legible where they cross the ensemble band
 LABEL_BOX = {"facecolor": "white", "alpha": 0.75, "edgecolor": "none", "pad": 0.8}
 # The run's time series this figure draws (see Budget.series).
@@ -54,14 +55,16 @@ def forecast(budget: dict, series: dict) -> Figure:
     step_value = finite(sim.get("step", {}).get("value"))
     with matplotlib.rc_context(RC):
         fig, axes = new_figure(
-            HEIGHT_IN, 2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.25]}
+            HEIGHT_IN + LEGEND_IN, 2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.25]}
         )
         top, bottom = axes[0, 0], axes[1, 0]
         alt = _population_panel(top, arrays, step_value, units)
         marked = _counts_and_marks(top, budget, series, *units)
-        top.legend(loc="best", fontsize=7)
         alt += _error_panel(bottom, times, arrays["error_p95"], units)
-        fig.tight_layout(h_pad=0.8)
+        # Below the panels, not over the curves or the marks' labels at the horizon.
+        fig.tight_layout(rect=(0, LEGEND_IN / fig.get_figheight(), 1, 1), h_pad=0.8)
+        handles, labels = top.get_legend_handles_labels()
+        fig.legend(handles, labels, loc="lower center", ncols=3, fontsize=7)
         alt += marked["alt"]
         svg = to_svg(fig, key, alt)
     caption = (
