@@ -52,7 +52,7 @@ def convergence(budget: dict) -> Figure:
         fig, axes = new_figure(LEGEND_IN + PANEL_IN * rows, rows, cols)
         alts, handles = [], {}
         for ax, (q, points) in zip(axes.flat, panels, strict=False):
-            ax.set_title(quantity_title(q), pad=8)
+            ax.set_title(quantity_title(q, cols), pad=8)
             if len(points) < 2:
                 ax.text(
                     0.5,

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import io
 import re
+import textwrap
 from collections.abc import Callable
 
 import numpy as np
@@ -30,6 +31,7 @@ GRID = "#d9dee2"
 WIDTH_IN = 6.9  # figure width [in]: inside the 180 mm print column, so print is at scale 1
 HALF_WIDTH_IN = 3.4  # a figure set beside a table: half the print column, less the gap
 PANEL_IN = 1.45  # height of one per-quantity bar panel [in]
+HALF_TITLE_CHARS = 38  # a bold 9 pt title this long fits a panel of half the figure width
 LOG_SPAN = 20.0  # bar values spanning more than this factor are drawn on a log axis
 LOG_TICKS = 8  # at most about this many labelled ticks on a log axis
 PAD_IN = 0.04  # margin around a figure's content [in]
@@ -102,8 +104,13 @@ def new_figure(height: float, rows: int = 1, cols: int = 1, width: float = WIDTH
     return fig, axes
 
 
-def quantity_title(q: dict) -> str:
-    return f"{q.get('name', 'quantity')} [{q.get('unit', '')}]"
+def quantity_title(q: dict, columns: int = 1) -> str:
+    """The panel title of a quantity; in a grid of two columns, wrapped so that it does not
+    run into the next panel (a left-aligned title is not kept inside its axes)."""
+    text = f"{q.get('name', 'quantity')} [{q.get('unit', '')}]"
+    if columns > 1:
+        text = "\n".join(textwrap.wrap(text, HALF_TITLE_CHARS, break_long_words=False))
+    return text
 
 
 def positive(values) -> list[float]:

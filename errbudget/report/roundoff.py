@@ -103,7 +103,7 @@ def roundoff_curves(budget: dict) -> Figure | None:
             ax.set_visible(False)
         alts = []
         for ax, q, cv in zip(axes.flat, quantities, curves, strict=False):
-            ax.set_title(quantity_title(q), pad=8)
+            ax.set_title(quantity_title(q, cols), pad=8)
             if cv is None:
                 _bars(ax, q)
                 alts.append(f"{q.get('name')}: no fitted curve")
