@@ -14,7 +14,7 @@ import pytest
 
 import errbudget
 from errbudget.budget.better_data import effective_draws, halved, weighted_spread, weights
-from errbudget.budget.passes import ensemble_for, reference_pass
+from errbudget.budget.passes import Candidates, ensemble_for, reference_pass
 from errbudget.case.distributions import Distribution
 from errbudget.solve.ensemble import ensemble_params
 from errbudget.uncertainty.design import sample_design
@@ -71,3 +71,22 @@ def test_reweighted_spread_matches_a_design_drawn_with_the_halved_sd():
 def test_weighted_spread_without_members_is_empty():
     spread = weighted_spread(np.array([np.nan, 1.0]), np.array([1.0, 0.0]), 0.9)
     assert spread["sd"] is None
+
+
+def test_the_weighted_percentile_equals_numpys_with_one_sort_shared():
+    # Reference: numpy.percentile(values, q, weights=w, method="inverted_cdf") (numpy 2.x),
+    # on values with ties and weights with zeros, including zero weights first in order.
+    rng = np.random.default_rng(5)
+    values = np.round(rng.lognormal(size=5000), 2)
+    view = object.__new__(Candidates)
+    view.orders = {}
+    for trial in range(6):
+        w = rng.random(values.size)
+        w[rng.random(values.size) < 0.3] = 0.0
+        if trial == 0:
+            w[np.argsort(values)[:50]] = 0.0
+        view.weights = w
+        for q in (0, 5, 50, 90, 95, 100):
+            expected = np.percentile(values, q, weights=w, method="inverted_cdf")
+            assert view.percentile(values, q) == expected
+    assert len(view.orders) == 1  # the values were sorted once for all the weights

@@ -18,6 +18,7 @@ from __future__ import annotations
 import numpy as np
 
 EPS = np.finfo(float).eps  # SALib's threshold for a constant output and a zero variance
+RESAMPLE_BLOCK = 8  # bootstrap resamples evaluated together (bounds the memory)
 
 
 def _ratio(numerator: np.ndarray, variance: np.ndarray) -> np.ndarray:
@@ -57,23 +58,29 @@ def indices(y: np.ndarray, groups: int, conf_level: float, n_resamples: int, see
     whole = np.r_[a, b]
     constant = np.ptp(whole) <= EPS
     variance = np.var(whole, axis=0)
-    a_r, b_r = a[r], b[r]
-    resampled = np.r_[a_r, b_r]
-    resampled_constant = np.ptp(resampled) <= EPS
-    variance_r = np.var(resampled, axis=0)
-    spread = np.ptp(resampled) != 0.0
     out = {key: np.zeros(groups) for key in ("S1", "S1_conf", "ST", "ST_conf")}
     for j in range(groups):
-        ab_r = ab[r, j]
         if not constant:
             out["S1"][j] = _ratio(np.mean(b * (ab[:, j] - a), axis=0), variance)
             out["ST"][j] = _ratio(0.5 * np.mean((a - ab[:, j]) ** 2, axis=0), variance)
-        if resampled_constant:
-            first_r = total_r = np.zeros(n_resamples)
-        else:
-            first_r = _ratio(np.mean(b_r * (ab_r - a_r), axis=0), variance_r)
-            total_r = _ratio(0.5 * np.mean((a_r - ab_r) ** 2, axis=0), variance_r)
-        if spread:
-            out["S1_conf"][j] = z * first_r.std(ddof=1)
-            out["ST_conf"][j] = z * total_r.std(ddof=1)
+    first_r, total_r = np.zeros((groups, n_resamples)), np.zeros((groups, n_resamples))
+    low, high = np.inf, -np.inf
+    # The resamples a few columns at a time: every column is reduced over the rows as in
+    # one piece (the same numbers), with memory of n x RESAMPLE_BLOCK, not n x n_resamples.
+    for start in range(0, n_resamples, RESAMPLE_BLOCK):
+        columns = slice(start, min(start + RESAMPLE_BLOCK, n_resamples))
+        rows = r[:, columns]
+        a_r, b_r = a[rows], b[rows]
+        resampled = np.r_[a_r, b_r]
+        low, high = min(low, resampled.min()), max(high, resampled.max())
+        variance_r = np.var(resampled, axis=0)
+        for j in range(groups):
+            ab_r = ab[rows, j]
+            first_r[j, columns] = _ratio(np.mean(b_r * (ab_r - a_r), axis=0), variance_r)
+            total_r[j, columns] = _ratio(0.5 * np.mean((a_r - ab_r) ** 2, axis=0), variance_r)
+    if high - low <= EPS:  # SALib: a constant resampled output gives zero indices
+        first_r[:], total_r[:] = 0.0, 0.0
+    if high - low != 0.0:
+        out["S1_conf"] = z * first_r.std(axis=1, ddof=1)
+        out["ST_conf"] = z * total_r.std(axis=1, ddof=1)
     return out
