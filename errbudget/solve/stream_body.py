@@ -136,11 +136,12 @@ def step_level(
             advance_block(y, y_next, f, t, h, p, first, m, factors)
         else:
             slope_block(y, f, t, p, first, m, factors)
-        _interval_ends(slope_block, y, f, f_now, end_y, end_f, just, reached, reached_f, t, p,
-                       first, m, factors)  # fmt: skip
+        ends = _interval_ends(slope_block, y, f, f_now, end_y, end_f, just, reached, reached_f, t,
+                              p, first, m, factors)  # fmt: skip
         if n >= 1:
+            y_end, f_end = (end_y, end_f) if ends else (y, f_now)
             _interval(
-                n, m, first, y_prev, end_y, f_prev, end_f, y, h, last, horizon, kinds, levels,
+                n, m, first, y_prev, y_end, f_prev, f_end, y, h, last, horizon, kinds, levels,
                 at_grid, at_index, at_s, end_grid, end_index, end_s, side, found, hit, best,
                 best_time, out, counting, count_grid, count_index, count_s, count_slot,
                 counted,
@@ -194,19 +195,20 @@ def _new_track(equilibria, first, m):
 def _interval_ends(slope_block, y, f, f_now, end_y, end_f, just, reached, reached_f, t, p, first,
                    m, factors):  # fmt: skip
     """Effective slopes at point n (zero where absorbed) and the end of the interval behind it:
-    the state, or where a member reached zero at n, the step's own end value and its slope."""
+    the state, or where a member reached zero at n, the step's own end value and its slope.
+
+    Returns whether any member reached zero at n: then the ends are in ``end_y``, ``end_f``;
+    otherwise they are ``y`` and ``f_now`` themselves (no copy)."""
     any_reached = False
     for j in range(m):  # an absorbed member does not move: its slope is zero
         f_now[j] = 0.0 if y[j] == 0.0 else f[j]
-        end_y[j] = y[j]
-        end_f[j] = f_now[j]
-        any_reached = any_reached or just[j]
+        any_reached |= just[j]
     if any_reached:  # rare: the interval that reaches zero ends at the step's own value
         slope_block(reached, reached_f, t, p, first, m, factors)
         for j in range(m):
-            if just[j]:
-                end_y[j] = reached[j]
-                end_f[j] = reached_f[j]
+            end_y[j] = reached[j] if just[j] else y[j]
+            end_f[j] = reached_f[j] if just[j] else f_now[j]
+    return any_reached
 
 
 @njit(cache=True, error_model="numpy")
@@ -228,8 +230,8 @@ def _point(y, n, last, tail, late_ok, track, above, below, high, low, m):
     for e in range(above.shape[0]):
         for j in range(m):
             value = y[j] if math.isfinite(y[j]) else 0.0
-            above[e, j] = above[e, j] or value > high[e, j]
-            below[e, j] = below[e, j] or value < low[e, j]
+            above[e, j] = above[e, j] | (value > high[e, j])
+            below[e, j] = below[e, j] | (value < low[e, j])
     if n >= 1 and last >= 2:
         _count_turns(y, track[T_SAFE_PREV], track[T_SIGN], track[T_TURNS], m)
         if late_ok and n >= tail + 1:
@@ -283,7 +285,7 @@ def _count_turns(y, safe_prev, carried, turns, m):
         increment = value - safe_prev[j]
         threshold = FLAT_SHARE * max(abs(value), abs(safe_prev[j]))
         sign = (increment > threshold) * 1.0 - (increment < -threshold) * 1.0
-        flip = (sign != 0.0) and (carried[j] != 0.0) and (sign != carried[j])
+        flip = (sign != 0.0) & (carried[j] != 0.0) & (sign != carried[j])  # no branches
         turns[j] += 1.0 if flip else 0.0
         carried[j] = sign if sign != 0.0 else carried[j]
 
@@ -305,15 +307,15 @@ def _interval(
         kind = kinds[q]
         if kind == TIME_TO and n <= last + 1:
             level = levels[q]
-            anything = False
-            for j in range(m):  # vectorised test; the bisection below is rare
+            anything = 0
+            for j in range(m):  # vectorised test (no branches); the bisection below is rare
                 y1 = y1s[j]
-                crossed = (
-                    (not found[q, j]) and math.isfinite(y1) and _sign(y1 - level) != side[q, j]
-                )
+                d = y1 - level  # finite where it counts: _sign(d) without its NaN branch
+                sign = (d > 0.0) * 1.0 - (d < 0.0) * 1.0
+                crossed = (not found[q, j]) & math.isfinite(y1) & (sign != side[q, j])
                 hit[j] = crossed
-                anything = anything or crossed
-            if anything:
+                anything += crossed
+            if anything > 0:
                 for j in range(m):
                     if hit[j]:
                         found[q, j] = True
