@@ -219,22 +219,13 @@ def _check_run(cases, args) -> list[Path]:
     output folder of each case (its name, links, files in the way, write access), and
     that no two cases would write into the same folder."""
     from errbudget.case.resources import check_design_size
-    from errbudget.outputs.files import check_output_folder, check_stem
+    from errbudget.outputs.files import claim_output_folder
 
     folders: dict[Path, Path] = {}
     for case in cases:
         if args.samples is not None:
             check_design_size(case, args.samples, "command line", f"--samples, for {case.path}")
-        check_stem(case.path.stem, case.path)
-        folder = args.out / case.path.stem
-        if folder in folders:
-            raise InputError(
-                f"{folders[folder]} and {case.path} would both write into {folder}; "
-                "give the case files different names (or run them with different --out)",
-                "command line",
-            )
-        check_output_folder(folder)
-        folders[folder] = case.path
+        claim_output_folder(folders, case.path, args.out)
     return list(folders)
 
 

@@ -190,7 +190,7 @@ def _plans(paths: list[Path], out: Path, samples: int | None) -> Iterator[_Plann
     """Each case loaded and checked, in turn: ready to run, or its failure as a row."""
     from errbudget.case.load import load_case
     from errbudget.case.resources import check_design_size, design_rows, precheck_case
-    from errbudget.outputs.files import check_output_folder, check_stem
+    from errbudget.outputs.files import claim_output_folder
 
     folders = {}
     for index, path in enumerate(paths):
@@ -199,16 +199,7 @@ def _plans(paths: list[Path], out: Path, samples: int | None) -> Iterator[_Plann
             case = load_case(path, samples=samples)
             if samples is not None:
                 check_design_size(case, samples, "command line", f"--samples, for {case.path}")
-            check_stem(case.path.stem, case.path)
-            folder = out / case.path.stem
-            if folder in folders:
-                raise InputError(
-                    f"{folders[folder]} and {case.path} would both write into {folder}; "
-                    "give the case files different names (or run them with different --out)",
-                    "command line",
-                )
-            check_output_folder(folder)
-            folders[folder] = case.path
+            folder = claim_output_folder(folders, case.path, out)
             rows = design_rows(case, samples if samples is not None else case.budget.samples)
         except Exception as error:  # noqa: BLE001 - one case's fault stays that case's
             code, message = _failure(error, path)

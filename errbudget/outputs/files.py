@@ -52,6 +52,23 @@ def check_stem(stem: str, case_path: Path) -> None:
         )
 
 
+def claim_output_folder(folders: dict[Path, Path], case_path: Path, out: Path) -> Path:
+    """The output folder ``out/<stem>`` of one case of a command, checked before anything runs
+    (:func:`check_stem`, :func:`check_output_folder`) and recorded in ``folders`` (folder ->
+    case file), so that no two cases of one command write into the same folder."""
+    check_stem(case_path.stem, case_path)
+    folder = out / case_path.stem
+    if folder in folders:
+        raise InputError(
+            f"{folders[folder]} and {case_path} would both write into {folder}; "
+            "give the case files different names (or run them with different --out)",
+            "command line",
+        )
+    check_output_folder(folder)
+    folders[folder] = case_path
+    return folder
+
+
 def check_output_folder(folder: Path) -> None:
     """Refuse, before anything runs, an output folder the outputs could not go into.
 
