@@ -84,6 +84,24 @@ MARSH_COUNTS = "day,count\n0,410\n28,1130\n56,2640\n84,4870\n112,6420\n140,7390\
 K_LINE = 'K  = { value = "9000 crayfish", low = "7500 crayfish", high = "10500 crayfish" }'
 
 
+def headless_browser(binary: str, profile: Path, *args: str) -> list[str]:
+    """The command line of a headless Chromium with its own profile and no network chatter,
+    for the report's browser tests; ``args`` say what it does (print, screenshot)."""
+    return [
+        binary,
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-quic",
+        "--no-first-run",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        f"--user-data-dir={profile}",
+        *args,
+    ]
+
+
 def strict_json(text: str):
     """Parse JSON, failing on NaN or infinity (which budget.json must never hold)."""
 

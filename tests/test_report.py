@@ -27,6 +27,7 @@ from types import SimpleNamespace
 import matplotlib
 import numpy as np
 import pytest
+from conftest import headless_browser
 
 import errbudget
 from errbudget.outputs.files import dumps
@@ -441,19 +442,7 @@ def _chromium() -> str:
 
 
 def _browser(binary: str, profile: Path, *args: str) -> subprocess.CompletedProcess:
-    command = [
-        binary,
-        "--headless",
-        "--no-sandbox",
-        "--disable-gpu",
-        "--disable-quic",
-        "--no-first-run",
-        "--disable-background-networking",
-        "--disable-component-update",
-        "--disable-sync",
-        f"--user-data-dir={profile}",
-        *args,
-    ]
+    command = headless_browser(binary, profile, *args)
     return subprocess.run(command, capture_output=True, timeout=CHROMIUM_TIMEOUT, check=False)
 
 

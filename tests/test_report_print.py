@@ -19,7 +19,7 @@ from html.parser import HTMLParser
 from pathlib import Path
 
 import pytest
-from conftest import DEMO_CASES, PERCH_LATER, REPO
+from conftest import DEMO_CASES, PERCH_LATER, REPO, headless_browser
 
 from errbudget.cli import main
 from errbudget.report.memo import since_brief
@@ -42,21 +42,9 @@ def _tool(name: str) -> str:
 
 
 def _print(html: Path, pdf: Path, profile: Path) -> None:
-    command = [
-        _tool("chromium"),
-        "--headless",
-        "--no-sandbox",
-        "--disable-gpu",
-        "--disable-quic",
-        "--no-first-run",
-        "--disable-background-networking",
-        "--disable-component-update",
-        "--disable-sync",
-        f"--user-data-dir={profile}",
-        "--no-pdf-header-footer",
-        f"--print-to-pdf={pdf}",
-        html.as_uri(),
-    ]
+    command = headless_browser(
+        _tool("chromium"), profile, "--no-pdf-header-footer", f"--print-to-pdf={pdf}", html.as_uri()
+    )
     done = subprocess.run(command, capture_output=True, timeout=TIMEOUT, check=False)
     assert done.returncode == 0 and pdf.exists(), done.stderr[-2000:]
 
